@@ -1,0 +1,95 @@
+"""Path templates: `{start:%Y-%m-%d}` and `{end:...}` rendered for a window.
+
+Templates are formatted with Python's `str.format`, `start` and `end` being
+the window's bounds as aware datetimes in the job's timezone. Pure functions.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import string
+from datetime import timedelta
+from itertools import islice
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from runner.windows import Window, WindowSpan
+
+_STEP_CODES = [  # finest strftime code in a template -> the step that changes it
+    (re.compile(r"%[SsfT]"), timedelta(seconds=1)),
+    (re.compile(r"%[MRc]"), timedelta(minutes=1)),
+    (re.compile(r"%[HIpkl]"), timedelta(hours=1)),
+    (re.compile(r"%[dejaAuwxDF]"), timedelta(days=1)),
+    (re.compile(r"%[UWVG]"), timedelta(days=7)),
+    (re.compile(r"%[mbBh]"), timedelta(days=28)),
+]
+
+
+def render(template: str, window: Window) -> str:
+    """The template for one window, with its bounds in the job's local time."""
+    return template.format(start=window.local_start, end=window.local_end)
+
+
+def uses_end(template: str) -> bool:
+    return any(f and f.split(".")[0] == "end" for _, f, _, _ in string.Formatter().parse(template))
+
+
+def expand(template: str, window: Window, limit: int = 10_000) -> list[str]:
+    """Every distinct rendering of a `{start:...}`-only template over the window.
+
+    A daily job reading hourly folders (`{start:%Y-%m-%d/%H}`) gets all of the
+    day's hours: the template is rendered at each step of its finest time
+    code between the window's start and end. Templates using `{end}` render once.
+    """
+    first = render(template, window)
+    if uses_end(template) or "{" not in template:
+        return [first]
+    step = _finest_step(template)
+    if step is None or window.length <= step:
+        return [first]
+    out = [first]
+    seen = {first}
+    t = window.start + step
+    # Steps are in absolute time; calendar codes are probed a little more often
+    # than they change so that no day or month is skipped across DST changes.
+    probe = step if step < timedelta(days=1) else timedelta(hours=1)
+    t = window.start + probe
+    while t < window.end and len(out) < limit:
+        local = t.astimezone(window.tz)
+        text = template.format(start=local, end=window.local_end)
+        if text not in seen:
+            seen.add(text)
+            out.append(text)
+        t += probe
+    return out
+
+
+def _finest_step(template: str) -> timedelta | None:
+    specs = " ".join(spec or "" for _, f, spec, _ in string.Formatter().parse(template) if f)
+    for pattern, step in _STEP_CODES:
+        if pattern.search(specs):
+            return step
+    if re.search(r"%[yYCg]", specs):
+        return timedelta(days=365)
+    return None
+
+
+def escapes(root: str | os.PathLike[str], relative: str) -> bool:
+    """True when `relative`, resolved under `root`, would land outside it."""
+    if os.path.isabs(relative):
+        return True
+    base = os.path.realpath(root)
+    target = os.path.realpath(os.path.join(base, relative))
+    return os.path.commonpath([base, target]) != base
+
+
+def first_collision(template: str, span: WindowSpan, limit: int = 20_000) -> tuple[Window, Window, str] | None:
+    """Two windows of `span` (the first `limit`) that render to the same path, if any."""
+    seen: dict[str, Window] = {}
+    for w in islice(span, limit):
+        path = render(template, w)
+        if path in seen:
+            return seen[path], w, path
+        seen[path] = w
+    return None

@@ -1,0 +1,160 @@
+"""A workspace: a folder with `jobs/*.yaml` and `state/`. Loading and validating it.
+
+`load_workspace` reads every job file, validates each one and the graph
+between them, resolves SQL steps statically, and either returns a
+`Workspace` or raises `SpecProblems` with every problem of the run.
+"""
+
+from __future__ import annotations
+
+import difflib
+import os
+from dataclasses import dataclass, field
+from functools import cached_property
+from pathlib import Path
+
+import networkx as nx
+
+from runner import graph as graphs
+from runner.errors import Problem, SpecProblems, UsageError
+from runner.spec import Job, load_job
+from runner.windows import Cadence
+
+JOB_SUFFIXES = (".yaml", ".yml")
+
+
+@dataclass
+class Workspace:
+    """Validated jobs of one workspace, their graph and their cadences."""
+
+    root: Path
+    jobs: dict[str, Job]
+    graph: nx.DiGraph
+    warnings: list[Problem] = field(default_factory=list)
+
+    @cached_property
+    def order(self) -> list[str]:
+        """Job names in dependency order."""
+        return graphs.order(self.graph)
+
+    @cached_property
+    def _cadences(self) -> dict[str, Cadence]:
+        return {name: Cadence.of(job.spec.window) for name, job in self.jobs.items()}
+
+    def cadence(self, name: str) -> Cadence:
+        return self._cadences[self.job(name).name]
+
+    def job(self, name: str) -> Job:
+        """The job called `name`; a UsageError with a close match when there is none."""
+        try:
+            return self.jobs[name]
+        except KeyError:
+            close = difflib.get_close_matches(name, sorted(self.jobs), n=1)
+            hint = f" (did you mean {close[0]!r}?)" if close else ""
+            known = ", ".join(sorted(self.jobs)) or "none"
+            raise UsageError(f"unknown job {name!r}{hint}; jobs here: {known}") from None
+
+    def select(self, names: list[str] | tuple[str, ...], downstream: bool = False) -> list[str]:
+        """Named jobs (all when empty), optionally with their consumers, in dependency order."""
+        if not names:
+            return list(self.order)
+        for n in names:
+            self.job(n)
+        if downstream:
+            return graphs.downstream(self.graph, list(names))
+        wanted = set(names)
+        return [n for n in self.order if n in wanted]
+
+    @property
+    def state_dir(self) -> Path:
+        return self.root / "state"
+
+    def path(self, relative: str | os.PathLike[str]) -> Path:
+        return self.root / relative
+
+
+def job_files(root: Path) -> list[Path]:
+    folder = root / "jobs"
+    if not folder.is_dir():
+        return []
+    return sorted(p for p in folder.iterdir() if p.suffix in JOB_SUFFIXES and p.is_file()
+                  and not p.name.startswith("."))
+
+
+def _display(path: Path) -> str:
+    try:
+        rel = os.path.relpath(path)
+    except ValueError:
+        return str(path)
+    return rel if not rel.startswith(".." + os.sep + "..") else str(path)
+
+
+def load_workspace(root: Path | str = ".", resolve_sql: bool = True) -> Workspace:
+    """Load and validate every job of the workspace at `root`.
+
+    Raises SpecProblems listing every error (job files, graph, SQL) together.
+    Warnings (advice that does not stop a run) are kept on the workspace.
+    """
+    root = Path(root).resolve()
+    files = job_files(root)
+    if not (root / "jobs").is_dir():
+        raise UsageError(f"{_display(root)} is not a weir workspace: it has no jobs/ folder (see `weir init`)")
+    problems: list[Problem] = []
+    jobs: dict[str, Job] = {}
+    for file in files:
+        try:
+            job = load_job(file, display=_display(file))
+        except SpecProblems as exc:
+            problems.extend(exc.problems)
+            continue
+        if job.name in jobs:
+            problems.append(Problem(_display(file), 1, 1, "", f"job {job.name!r} is defined twice ({jobs[job.name].file})"))
+            continue
+        jobs[job.name] = job
+    graph = graphs.build_graph(jobs)
+    problems.extend(graphs.graph_problems(jobs, graph))
+    warnings: list[Problem] = []
+    if not problems:
+        problems.extend(_output_collisions(jobs))
+    if resolve_sql and not problems:
+        for p in _sql_problems(jobs, graph):
+            (warnings if p.severity == "warning" else problems).append(p)
+    if problems:
+        raise SpecProblems(problems)
+    return Workspace(root=root, jobs=jobs, graph=graph, warnings=warnings)
+
+
+def _output_collisions(jobs: dict[str, Job]) -> list[Problem]:
+    """Output templates that would write two windows to one file (a silent overwrite)."""
+    from datetime import timedelta
+
+    from runner.paths import first_collision
+
+    problems = []
+    for _, job in sorted(jobs.items()):
+        path = job.spec.output.path
+        if path is None:
+            continue
+        cad = Cadence.of(job.spec.window)
+        hi = cad.end if cad.end is not None else cad.start + timedelta(days=400)
+        clash = first_collision(path, cad.span(None, hi))
+        if clash:
+            a, b, rendered = clash
+            problems.append(job.problem(("output", "path"), (
+                f"windows {a.id} and {b.id} would both write {rendered}; add finer fields to the "
+                "template (for hourly windows on fall-back days include the offset, %z)")))
+    return problems
+
+
+def _sql_problems(jobs: dict[str, Job], graph: nx.DiGraph) -> list[Problem]:
+    from runner.sqlcheck import resolve_job
+
+    schemas: dict = {}
+    problems: list[Problem] = []
+    for name in graphs.order(graph):
+        job = jobs[name]
+        resolution = resolve_job(job, schemas)
+        schemas[name] = resolution.output
+        for finding in resolution.findings:
+            problems.append(job.problem(("steps", finding.step, "sql"), finding.message))
+    return problems
