@@ -155,6 +155,216 @@ def graph(obj: Context, fmt: str) -> None:
     click.echo(render(ws.graph, ws.jobs, fmt), nl=False)
 
 
+workers_option = click.option("--workers", type=click.IntRange(min=1), metavar="N",
+                              help="Windows run in parallel (processes). Default: the number of CPU cores.")
+
+
+@cli.command()
+@click.argument("job")
+@click.option("--window", "window_id", required=True, metavar="ID",
+              help="The window's id: its start in ISO 8601 (no offset means the job's timezone).")
+@click.option("--force", is_flag=True,
+              help="Run even when the window is current. REPLACES the window's existing output.")
+@json_option
+@click.pass_obj
+def run(obj: Context, job: str, window_id: str, force: bool, as_json: bool) -> None:
+    """Run one window of JOB, unless it is already current (same fingerprint).
+
+    A re-run replaces the window's output atomically; it never adds to it.
+    """
+    from runner import api
+
+    if force and not as_json:
+        click.echo(f"--force: the output of {job} {window_id} will be replaced if it exists.", err=True)
+    outcome = api.run(obj.root, job, window_id, obj.ledger, force=force)
+    if as_json:
+        _emit_json(outcome.as_dict())
+    else:
+        click.echo(_outcome_line(outcome))
+    if outcome.status == "failed":
+        sys.exit(1)
+
+
+def _outcome_line(o: Any) -> str:
+    rows = f" {o.rows_written} rows" if o.rows_written is not None else ""
+    took = f" {o.seconds:.2f}s" if o.seconds else ""
+    reason = f"  {o.reason}" if o.reason and o.status != "done" else ""
+    return f"{o.status:<8} {o.job} {o.window}{took}{rows}{reason}"
+
+
+@cli.command()
+@click.argument("jobs", nargs=-1, required=True)
+@click.option("--from", "lo", metavar="TIME", help="First window start (default: each job's start).")
+@click.option("--to", "hi", metavar="TIME", help="Run windows starting before TIME (default: all due windows).")
+@click.option("--downstream", is_flag=True, help="Also run the jobs that read these jobs, over the affected range.")
+@workers_option
+@click.option("--force", is_flag=True,
+              help="Recompute windows even when current. REPLACES their existing outputs (says how many first).")
+@click.option("--yes", is_flag=True, help="Do not ask before --force replaces outputs.")
+@click.option("--dry-run", is_flag=True, help="List the windows that would be considered; run nothing.")
+@at_option
+@json_option
+@click.pass_obj
+def backfill(obj: Context, jobs: tuple[str, ...], lo: str | None, hi: str | None, downstream: bool,
+             workers: int | None, force: bool, yes: bool, dry_run: bool, at: str | None, as_json: bool) -> None:
+    """Run every due window of JOBS in [--from, --to) that is not already current.
+
+    Safe to repeat and to resume: windows done with the current fingerprint are
+    skipped, so a second run does nothing and an interrupted one picks up where
+    it stopped. Jobs run in dependency order; windows of one job run in parallel,
+    except carry-forward chains, which run in time order. Exit status 1 when any
+    window failed.
+    """
+    from runner import api
+
+    now = _now(at)
+    if dry_run:
+        ws = api.workspace(obj.root)
+        first = ws.job(jobs[0]).name
+        plan = api.plan_backfill(ws, list(jobs), api.parse_bound(ws, first, lo, "--from"),
+                                 api.parse_bound(ws, first, hi, "--to"), now, downstream)
+        rows = [{"job": t.job, "window": t.window.id, "reason": t.reason} for t in plan.tasks]
+        if as_json:
+            _emit_json({"windows": rows, "not_due": plan.not_due})
+            return
+        for r in rows:
+            click.echo(f"{r['job']} {r['window']}  {r['reason']}")
+        click.echo(f"{len(rows)} window(s) would be considered (current ones are skipped when run)")
+        for job, n in plan.not_due.items():
+            click.echo(f"{job}: {n} window(s) in range are not due yet")
+        return
+    tty = sys.stdout.isatty() and not as_json
+    progress = _Progress(tty, quiet=as_json)
+
+    def on_plan(tasks: list[Any], replaced: int) -> bool:
+        if force and replaced:
+            msg = (f"--force: {replaced} existing output(s) will be REPLACED by recomputed ones "
+                   f"({len(tasks)} window(s) in all).")
+            click.echo(msg, err=True)
+            if not yes and sys.stdin.isatty() and not click.confirm("Go on?", default=False, err=True):
+                click.echo("nothing was run", err=True)
+                return False
+        progress.start(len(tasks))
+        return True
+
+    try:
+        result = api.backfill(obj.root, list(jobs), lo, hi, now, obj.ledger, downstream, workers, force,
+                              on_outcome=progress.update, on_plan=on_plan)
+    finally:
+        progress.stop()
+    if as_json:
+        _emit_json({"windows": [o.as_dict() for o in result.outcomes], "counts": result.counts(),
+                    "not_due": result.not_due, "replaced": result.replaced})
+    else:
+        _backfill_summary(result)
+    if result.failed:
+        sys.exit(1)
+
+
+class _Progress:
+    """A rich progress bar on a terminal; one plain line per window otherwise."""
+
+    def __init__(self, tty: bool, quiet: bool = False):
+        self.tty, self.quiet = tty, quiet
+        self.counts = {"done": 0, "failed": 0, "skipped": 0, "waiting": 0}
+        self.bar = None
+        self.task = None
+
+    def start(self, total: int) -> None:
+        if self.quiet or not self.tty:
+            return
+        from rich.progress import (
+            BarColumn,
+            MofNCompleteColumn,
+            Progress,
+            TextColumn,
+            TimeRemainingColumn,
+        )
+
+        self.bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                            TextColumn("{task.fields[counts]}"), TimeRemainingColumn(), transient=False)
+        self.bar.start()
+        self.task = self.bar.add_task("windows", total=total, counts="")
+
+    def update(self, task: Any, outcome: Any) -> None:
+        key = outcome.status if outcome.status in self.counts else "waiting"
+        self.counts[key] += 1
+        if self.quiet:
+            return
+        if self.bar is not None:
+            text = "  ".join(f"{k} {v}" for k, v in self.counts.items() if v)
+            self.bar.update(self.task, advance=1, counts=text)
+            if outcome.status == "failed":
+                self.bar.console.print(f"[bold]failed[/] {outcome.job} {outcome.window}: {outcome.reason}")
+        elif outcome.status != "skipped":
+            click.echo(_outcome_line(outcome))
+
+    def stop(self) -> None:
+        if self.bar is not None:
+            self.bar.stop()
+
+
+def _backfill_summary(result: Any) -> None:
+    from rich.table import Table
+
+    counts = result.counts()
+    table = Table(box=None, pad_edge=False, show_edge=False)
+    for col in ("job", "done", "skipped", "failed", "waiting", "not due"):
+        table.add_column(col, justify="left" if col == "job" else "right")
+    jobs = list(dict.fromkeys([o.job for o in result.outcomes] + list(result.not_due)))
+    for job in jobs:
+        c = counts.get(job, {})
+        waiting = sum(v for k, v in c.items() if k not in ("done", "skipped", "failed"))
+        table.add_row(job, str(c.get("done", 0)), str(c.get("skipped", 0)), str(c.get("failed", 0)),
+                      str(waiting), str(result.not_due.get(job, 0)))
+    console = _console()
+    console.print(table)
+    waiting = [o for o in result.outcomes if o.status not in ("done", "skipped", "failed")]
+    for o in waiting[:5]:
+        console.print(f"{o.status} {o.job} {o.window}: {o.reason}")
+    if len(waiting) > 5:
+        console.print(f"... and {len(waiting) - 5} more not run")
+    failed = [o for o in result.outcomes if o.status == "failed"]
+    for o in failed[:10]:
+        console.print(f"failed {o.job} {o.window}: {o.reason}")
+    if failed:
+        console.print(f"{len(failed)} window(s) failed; details: weir history JOB --window ID, state/logs/")
+
+
+@cli.command()
+@click.argument("job")
+@click.option("--window", "window_id", metavar="ID", help="Only this window's runs.")
+@click.option("--limit", type=click.IntRange(min=1), default=50, show_default=True, help="At most this many runs.")
+@json_option
+@click.pass_obj
+def history(obj: Context, job: str, window_id: str | None, limit: int, as_json: bool) -> None:
+    """List JOB's runs, newest first: status, times, rows, fingerprint, error."""
+    from runner import api
+
+    rows = api.history(obj.root, job, window_id, obj.ledger, limit)
+    if as_json:
+        _emit_json(rows)
+        return
+    from rich.table import Table
+
+    table = Table(box=None, pad_edge=False, show_edge=False)
+    for col in ("run", "window", "status", "started (UTC)", "seconds", "read", "dropped", "rejected",
+                "written", "fingerprint", "error"):
+        table.add_column(col)
+    for r in rows:
+        table.add_row(str(r["id"]), r["window_id"], r["status"], (r["started_at"] or "")[:19],
+                      f"{r['seconds']:.2f}" if r["seconds"] is not None else "", _n(r["rows_read"]),
+                      _n(r["rows_dropped"]), _n(r["rows_rejected"]), _n(r["rows_written"]),
+                      (r["fingerprint"] or "")[:12], (r["error"] or "")[:120])
+    _console().print(table)
+    if not rows:
+        click.echo(f"no runs of {job} recorded" + (f" for window {window_id}" if window_id else ""))
+
+
+def _n(value: Any) -> str:
+    return "" if value is None else str(value)
+
+
 def main(argv: list[str] | None = None) -> None:
     """Entry point: run the CLI, turning user errors into one line and an exit status."""
     from runner.errors import SpecProblems, WeirError

@@ -161,6 +161,10 @@ class JobInput(_Model):
     lookback: Duration | None = Field(
         default=None, description="read every producer window overlapping [start - lookback, end)"
     )
+    columns: Columns | None = Field(
+        default=None, alias="schema",
+        description="the producer's output columns; needed only when they cannot be worked out from its SQL",
+    )
 
     @model_validator(mode="after")
     def _one_shift(self) -> JobInput:

@@ -84,7 +84,7 @@ def resolve_job(job: Job, producer_schemas: dict[str, pl.Schema | None]) -> Reso
         if isinstance(source, FileInput | DatabaseInput):
             known[name] = declared_schema(source.columns)
         elif isinstance(source, JobInput):
-            known[name] = producer_schemas.get(source.job)
+            known[name] = declared_schema(source.columns) or producer_schemas.get(source.job)
     result = Resolution(output=None)
     last: pl.Schema | None = None
     for index, step in enumerate(job.spec.steps):

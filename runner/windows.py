@@ -396,7 +396,7 @@ class Cadence:
     def _cron_iter(self, after: datetime) -> Any:
         from croniter import croniter
 
-        return croniter(self.cron, after.astimezone(self.tz))
+        return _CronFires(croniter(self.cron, after.astimezone(self.tz)), self.cron, self.tz)
 
     def _cron_next(self, instant: datetime, inclusive: bool) -> datetime | None:
         probe = instant - timedelta(seconds=1) if inclusive else instant
@@ -419,6 +419,8 @@ class Cadence:
         starts: list[int] = []
         ends: list[int] = []
         s = to_us(it.get_next(datetime).astimezone(UTC))
+        while s < to_us(lo):  # croniter works in whole seconds; lo may not be one
+            s = to_us(it.get_next(datetime).astimezone(UTC))
         while hi_us is None or s < hi_us:
             e = to_us(it.get_next(datetime).astimezone(UTC))
             if end_us is not None and e > end_us:
@@ -427,3 +429,46 @@ class Cadence:
             ends.append(e)
             s = e
         return WindowSpan.from_lists(starts, ends, self.tz)
+
+
+class _CronFires:
+    """croniter's fire times, held to cron's own rule at DST changes.
+
+    An expression with a fixed minute and hour (`30 1 * * *`) fires once when
+    a wall time repeats (croniter fires at both, which would cut a one-hour
+    window out of a daily job) and moves forward out of a spring-forward gap.
+    Any other expression (`*/15 * * * *`, `5 */2 * * *`) runs in absolute time:
+    it fires at both repeated wall times and never at a wall time that croniter
+    made up at the end of a gap. This is the rule of Debian's cron, which the
+    independent cronsim library also follows.
+    """
+
+    def __init__(self, it: Any, expr: str, tz: ZoneInfo):
+        fields = expr.split()
+        self._it = it
+        self._expr = expr
+        self._tz = tz
+        self._fixed = not fields[0].startswith("*") and not fields[1].startswith("*")
+
+    def _keep(self, fire: datetime) -> bool:
+        wall = fire.replace(tzinfo=None)
+        utc = fire.astimezone(UTC)
+        if self._fixed:
+            return wall.replace(tzinfo=self._tz, fold=0).astimezone(UTC) == utc
+        if (utc - timedelta(microseconds=1)).astimezone(self._tz).utcoffset() == fire.utcoffset():
+            return True  # not at a clock change
+        from croniter import croniter
+
+        return bool(croniter.match(self._expr, wall))
+
+    def get_next(self, kind: Any = datetime) -> datetime:
+        while True:
+            fire = self._it.get_next(kind)
+            if self._keep(fire):
+                return fire
+
+    def get_prev(self, kind: Any = datetime) -> datetime:
+        while True:
+            fire = self._it.get_prev(kind)
+            if self._keep(fire):
+                return fire

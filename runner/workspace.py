@@ -31,6 +31,7 @@ class Workspace:
     jobs: dict[str, Job]
     graph: nx.DiGraph
     warnings: list[Problem] = field(default_factory=list)
+    output_schemas: dict = field(default_factory=dict)
 
     @cached_property
     def order(self) -> list[str]:
@@ -114,14 +115,16 @@ def load_workspace(root: Path | str = ".", resolve_sql: bool = True) -> Workspac
     graph = graphs.build_graph(jobs)
     problems.extend(graphs.graph_problems(jobs, graph))
     warnings: list[Problem] = []
-    if not problems:
-        problems.extend(_output_collisions(jobs))
-    if resolve_sql and not problems:
-        for p in _sql_problems(jobs, graph):
+    schemas: dict = {}
+    problems.extend(_output_collisions(jobs))
+    # Every problem of a run is reported together; SQL is resolved in dependency
+    # order, which needs a graph without cycles (cycles are reported above).
+    if resolve_sql and nx.is_directed_acyclic_graph(graph):
+        for p in _sql_problems(jobs, graph, schemas):
             (warnings if p.severity == "warning" else problems).append(p)
     if problems:
         raise SpecProblems(problems)
-    return Workspace(root=root, jobs=jobs, graph=graph, warnings=warnings)
+    return Workspace(root=root, jobs=jobs, graph=graph, warnings=warnings, output_schemas=schemas)
 
 
 def _output_collisions(jobs: dict[str, Job]) -> list[Problem]:
@@ -146,10 +149,10 @@ def _output_collisions(jobs: dict[str, Job]) -> list[Problem]:
     return problems
 
 
-def _sql_problems(jobs: dict[str, Job], graph: nx.DiGraph) -> list[Problem]:
+def _sql_problems(jobs: dict[str, Job], graph: nx.DiGraph, schemas: dict) -> list[Problem]:
+    """SQL findings of every job; fills `schemas` with each job's resolved output schema."""
     from runner.sqlcheck import resolve_job
 
-    schemas: dict = {}
     problems: list[Problem] = []
     for name in graphs.order(graph):
         job = jobs[name]

@@ -1,0 +1,481 @@
+"""One window end to end: the only place that sequences effects.
+
+    claim -> find inputs -> fingerprint -> skip if current -> record start
+    -> read, steps, write to a temporary file -> checks -> swap -> record
+
+A window whose inputs or producers are not there yet is `waiting` (nothing is
+recorded). A failure records its error in the ledger and its traceback in
+`state/logs/JOB/WINDOW.log`, leaves the previous output in place, and is
+retried `retries:` times with a doubling delay.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import subprocess
+import threading
+import time
+import traceback
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from functools import lru_cache
+from pathlib import Path
+from typing import Any
+
+from runner import __version__
+from runner import fingerprint as fp
+from runner.graph import upstream_windows
+from runner.ledger import Ledger, owner_id, utc_text
+from runner.paths import render
+from runner.spec import DatabaseInput, FileInput, JobInput
+from runner.windows import Window
+from runner.workspace import Workspace
+
+CLAIM_TTL = 120.0
+
+
+@dataclass
+class Outcome:
+    """What happened to one window."""
+
+    job: str
+    window: str
+    status: str  # done | failed | skipped | waiting | claimed
+    reason: str = ""
+    run_id: int | None = None
+    seconds: float = 0.0
+    step_seconds: float = 0.0
+    rows_written: int | None = None
+    error: str | None = None
+
+    def as_dict(self) -> dict[str, Any]:
+        return dict(self.__dict__)
+
+
+class ClaimKeeper:
+    """Renews the claims this process holds, from one background thread."""
+
+    def __init__(self, ledger: Ledger, owner: str, ttl: float = CLAIM_TTL):
+        self.ledger, self.owner, self.ttl = ledger, owner, ttl
+        self.held: set[tuple[str, str]] = set()
+        self._lock = threading.Lock()
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+
+    def take(self, job: str, key: str) -> bool:
+        if not self.ledger.claim(job, key, self.owner, self.ttl):
+            return False
+        with self._lock:
+            self.held.add((job, key))
+            if self._thread is None:
+                self._thread = threading.Thread(target=self._loop, name="weir-claims", daemon=True)
+                self._thread.start()
+        return True
+
+    def drop(self, job: str, key: str) -> None:
+        with self._lock:
+            self.held.discard((job, key))
+
+    def _loop(self) -> None:
+        while not self._stop.wait(self.ttl / 3):
+            with self._lock:
+                held = list(self.held)
+            for job, key in held:
+                # a missed renewal is retried next round
+                with contextlib.suppress(Exception):
+                    self.ledger.renew(job, key, self.owner, self.ttl)
+
+    def stop(self) -> None:
+        self._stop.set()
+
+
+@dataclass
+class RunContext:
+    """What running windows needs: the workspace, the ledger and who we are."""
+
+    ws: Workspace
+    ledger: Ledger
+    owner: str = field(default_factory=owner_id)
+    sleep: Callable[[float], None] = time.sleep
+    claims: ClaimKeeper | None = None
+
+    def __post_init__(self) -> None:
+        if self.claims is None:
+            self.claims = ClaimKeeper(self.ledger, self.owner)
+
+
+@lru_cache(maxsize=8)
+def code_version(root: Path) -> str | None:
+    """`git describe --always --dirty` of the workspace, when it is a git checkout."""
+    try:
+        out = subprocess.run(["git", "describe", "--always", "--dirty", "--tags"], cwd=root,
+                             capture_output=True, text=True, timeout=10)
+    except (OSError, subprocess.SubprocessError):
+        return None
+    return out.stdout.strip() or None if out.returncode == 0 else None
+
+
+# ---------------------------------------------------------------- preparing
+
+
+@dataclass
+class Producer:
+    input: str
+    job: str
+    window: Window
+    state: dict[str, Any] | None
+
+
+@dataclass
+class Prepared:
+    """Everything known about a window before its steps run."""
+
+    files: dict[str, Any]
+    producers: list[Producer]
+    parts: dict[str, fp.Part]
+    fingerprint: str
+    waiting: str | None
+    ingested_ns: int | None
+
+
+def spec_and_code(ws: Workspace, job: str) -> tuple[fp.Part, fp.Part]:
+    """The spec and code components of `job` as its files are now."""
+    from runner.steps import code_pieces
+
+    spec = ws.jobs[job].spec
+    return fp.spec_part(spec), fp.code_part(code_pieces(spec, ws.root))
+
+
+def producer_windows(ws: Workspace, job: str, window: Window) -> list[tuple[str, str, Window]]:
+    """(input, producer job, producer window) for every job input of a window."""
+    out = []
+    cad = ws.cadence(job)
+    for name, source in ws.jobs[job].spec.inputs.items():
+        if isinstance(source, JobInput):
+            pcad = ws.cadence(source.job)
+            for w in upstream_windows(cad, window, pcad, source, same_job=source.job == job):
+                out.append((name, source.job, w))
+    return out
+
+
+def prepare(ctx: RunContext, job: str, window: Window, database_entries: list[dict[str, Any]] | None = None
+            ) -> Prepared:
+    """Find inputs and producer states; compute the fingerprint (reads the file system and ledger)."""
+    from runner.sources import find_files
+
+    ws = ctx.ws
+    spec = ws.jobs[job].spec
+    files = {}
+    manifest: list[dict[str, Any]] = []
+    waiting = None
+    newest = None
+    for name, source in spec.inputs.items():
+        if isinstance(source, FileInput):
+            found = find_files(ws.root, name, source, window)
+            files[name] = found
+            manifest.extend(found.manifest)
+            if found.newest_mtime_ns is not None:
+                newest = max(newest or 0, found.newest_mtime_ns)
+            if not found.paths and source.required and waiting is None:
+                waiting = f"input {name}: no files match {', '.join(found.patterns[:3])}"
+    manifest.extend(database_entries or [])
+    producers: list[Producer] = []
+    by_job: dict[str, list[tuple[str, Window]]] = {}
+    for name, pjob, w in producer_windows(ws, job, window):
+        by_job.setdefault(pjob, []).append((name, w))
+    upstream = []
+    for pjob, items in by_job.items():
+        states = ctx.ledger.state_rows(pjob, [w.key for _, w in items])
+        not_done = []
+        for name, w in items:
+            state = states.get(w.key)
+            producers.append(Producer(name, pjob, w, state))
+            if state is None or state["state"] != "done":
+                not_done.append(w)
+            else:
+                upstream.append({"input": name, "job": pjob, "window": w.key, "digest": state["output_digest"]})
+        if not_done and waiting is None:
+            what = "itself" if pjob == job else pjob
+            waiting = (f"waiting for {what}: {len(not_done)} of {len(items)} producer window(s) not done "
+                       f"(first {not_done[0].id})")
+    spec_p, code_p = spec_and_code(ws, job)
+    parts = {"spec": spec_p, "code": code_p, "input": fp.input_part(manifest), "upstream": fp.upstream_part(upstream)}
+    end_key = Window(window.end, window.end, window.tz).key
+    return Prepared(files, producers, parts, fp.total(window.key, end_key, parts), waiting, newest)
+
+
+# ---------------------------------------------------------------- running
+
+
+def run_window(ctx: RunContext, job: str, window: Window, force: bool = False) -> Outcome:
+    """Run one window unless it is current, claimed elsewhere or waiting; retry on failure."""
+    assert ctx.claims is not None
+    started = time.perf_counter()
+    if not ctx.claims.take(job, window.key):
+        return Outcome(job, window.id, "claimed", "another process is running this window")
+    released = False
+    try:
+        retries = ctx.ws.jobs[job].spec.retries
+        delay = ctx.ws.jobs[job].spec.retry_delay.total_seconds()
+        attempt = 0
+        while True:
+            attempt += 1
+            outcome = _attempt(ctx, job, window, force, attempt)
+            if outcome.status in ("done", "skipped", "waiting") or attempt > retries:
+                released = outcome.status == "done"  # finish_run released the claim
+                break
+            ctx.sleep(delay * (2 ** (attempt - 1)))
+        outcome.seconds = time.perf_counter() - started
+        return outcome
+    finally:
+        ctx.claims.drop(job, window.key)
+        if not released:
+            ctx.ledger.release(job, window.key, ctx.owner)
+
+
+def _attempt(ctx: RunContext, job: str, window: Window, force: bool, attempt: int) -> Outcome:
+    from runner.sources import InputStats, database_frame
+
+    ws = ctx.ws
+    spec = ws.jobs[job].spec
+    stats = InputStats()
+    run_id = None
+    t0 = time.perf_counter()
+    try:
+        db_frames = {}
+        db_entries = []
+        for name, source in spec.inputs.items():
+            if isinstance(source, DatabaseInput):
+                frame, entry = database_frame(ws.root, name, source, window, ws.cadence(job).tz.key, stats)
+                db_frames[name] = frame
+                db_entries.append(entry)
+        prep = prepare(ctx, job, window, db_entries)
+        if prep.waiting:
+            return Outcome(job, window.id, "waiting", prep.waiting)
+        current = ctx.ledger.state_row(job, window.key)
+        if (not force and current is not None and current["state"] == "done"
+                and current["fingerprint"] == prep.fingerprint and not current.get("output_state")):
+            return Outcome(job, window.id, "skipped", "current: already done with this fingerprint")
+        run_id = ctx.ledger.start_run(_run_values(ctx, job, window, prep, attempt, force), _texts(prep))
+        return _execute(ctx, job, window, prep, run_id, stats, db_frames, t0)
+    except Exception as exc:  # noqa: BLE001 - every failure is recorded, none escapes
+        return _fail(ctx, job, window, run_id, exc, stats, attempt, t0)
+
+
+def _run_values(ctx: RunContext, job: str, window: Window, prep: Prepared, attempt: int, force: bool
+                ) -> dict[str, Any]:
+    end_key = Window(window.end, window.end, window.tz).key
+    ingested = (datetime.fromtimestamp(prep.ingested_ns / 1e9, UTC) if prep.ingested_ns else None)
+    return {
+        "job": job, "window_key": window.key, "window_end": end_key, "window_id": window.id,
+        "attempt": attempt, "forced": force, "fingerprint": prep.fingerprint,
+        **{f"fp_{c}": prep.parts[c].hash for c in fp.COMPONENTS},
+        "code_version": code_version(ctx.ws.root), "weir_version": __version__,
+        "ingested_at": utc_text(ingested) if ingested else None,
+    }
+
+
+def _texts(prep: Prepared) -> list[tuple[str, str, str]]:
+    return [(prep.parts[c].hash, c, prep.parts[c].text) for c in fp.COMPONENTS]
+
+
+def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: int, stats: Any,
+             db_frames: dict[str, Any], t0: float) -> Outcome:
+    import polars as pl
+
+    from runner import sinks, steps
+    from runner.checks import check_output
+    from runner.sources import file_frame
+
+    ws = ctx.ws
+    spec = ws.jobs[job].spec
+    tz = ws.cadence(job).tz.key
+    frames: dict[str, pl.LazyFrame] = dict(db_frames)
+    by_input: dict[str, list[Producer]] = {}
+    for p in prep.producers:
+        by_input.setdefault(p.input, []).append(p)
+    for name, source in spec.inputs.items():
+        if isinstance(source, FileInput):
+            frames[name] = file_frame(ws.root, name, source, prep.files[name], window, tz, stats,
+                                      empty_schema=None)
+        elif isinstance(source, JobInput):
+            frames[name] = _producer_frame(ws, source, by_input.get(name, []), stats)
+    result = steps.build(spec, frames, window, ws.root)
+    out = spec.output
+    stamps = None
+    if out.stamp:
+        stamps = {"window_start": window.start, "window_end": window.end, "run_id": run_id,
+                  "code_version": code_version(ws.root) or ""}
+    step_start = time.perf_counter()
+    previous = _previous_output(ctx, job, window)
+    if out.path is not None:
+        relative = render(out.path, window)
+        staged = sinks.stage_file(ws.root, relative, result, out.file_format, stamps)
+        rejected_stage = None
+        try:
+            step_seconds = time.perf_counter() - step_start
+            stats.check_fractions()
+            check_output(staged.scan(), list(out.checks), previous)
+            rejected_path = relative + ".rejected.parquet"
+            if stats.rejected:
+                rejected_stage = sinks.stage_frame_file(ws.root, rejected_path, pl.concat(stats.rejected,
+                                                                                        how="diagonal_relaxed"))
+        except BaseException:
+            staged.discard()
+            if rejected_stage is not None:
+                rejected_stage.discard()
+            raise
+        staged.commit()
+        if rejected_stage is not None:
+            rejected_stage.commit()
+        else:
+            old = sinks.target(ws.root, rejected_path)
+            if old.exists():
+                old.unlink()
+        location, rows, digest, checksum = relative, staged.rows, staged.digest, staged.checksum
+    else:
+        frame = result.collect(engine="streaming")
+        if stamps:
+            frame = frame.with_columns([pl.lit(v).alias(k) for k, v in stamps.items() if k != "window_start"])
+        step_seconds = time.perf_counter() - step_start
+        stats.check_fractions()
+        check_output(frame.lazy(), list(out.checks), previous)
+        rows, digest = sinks.write_table(_db_url(ws.root, out.database), out.table, frame, window.key)
+        location, checksum = f"table {out.table}", None
+    finished = {
+        "status": "done", "seconds": time.perf_counter() - t0, "step_seconds": step_seconds,
+        "rows_read": stats.rows_read if stats.counted else None, "rows_dropped": stats.rows_dropped,
+        "rows_rejected": stats.rows_rejected, "rows_written": rows, "output": location,
+        "output_digest": digest, "output_checksum": checksum,
+    }
+    state = {
+        "window_end": Window(window.end, window.end, window.tz).key, "window_id": window.id, "state": "done",
+        "fingerprint": prep.fingerprint, **{f"fp_{c}": prep.parts[c].hash for c in fp.COMPONENTS},
+        "output": location, "output_digest": digest, "ingested_at": _ingested(prep), "seconds": finished["seconds"],
+        "output_state": None,
+    }
+    ctx.ledger.finish_run(run_id, job, window.key, ctx.owner, finished, state)
+    return Outcome(job, window.id, "done", "ran", run_id, step_seconds=step_seconds, rows_written=rows)
+
+
+def _ingested(prep: Prepared) -> str | None:
+    if not prep.ingested_ns:
+        return None
+    return utc_text(datetime.fromtimestamp(prep.ingested_ns / 1e9, UTC))
+
+
+def _db_url(root: Path, url: str | None) -> str:
+    from runner.sources import _expand_sqlite
+
+    assert url is not None
+    return _expand_sqlite(root, url)
+
+
+def _producer_frame(ws: Workspace, source: JobInput, producers: list[Producer], stats: Any) -> Any:
+    import polars as pl
+
+    from runner.sources import output_frame, table_rows
+    from runner.sqlcheck import declared_schema
+
+    empty = declared_schema(source.columns) or ws.output_schemas.get(source.job)
+    out = ws.jobs[source.job].spec.output
+    if out.path is not None:
+        paths = [str(ws.root / p.state["output"]) for p in producers if p.state and p.state.get("output")]
+        if not paths and empty is None:
+            from runner.sources import InputError
+
+            raise InputError(f"input from job {source.job} is empty here and its columns are unknown; "
+                             "declare them with schema: under this input")
+        frame = output_frame(paths, dict(empty) if empty is not None else None)
+        if paths:
+            with stats.lock:
+                stats.rows_read += pl.scan_parquet(paths).select(pl.len()).collect().item() \
+                    if all(p.endswith(".parquet") for p in paths) else 0
+        return frame
+    keys = [p.window.key for p in producers]
+    rows = table_rows(_db_url(ws.root, out.database), out.table, keys) if keys else None
+    if rows is None or (rows.height == 0 and empty is not None and not rows.columns):
+        return pl.LazyFrame(schema=dict(empty) if empty is not None else {})
+    return rows.lazy()
+
+
+def _previous_output(ctx: RunContext, job: str, window: Window) -> Any:
+    """The previous window's output (for `change` checks), or None."""
+    out = ctx.ws.jobs[job].spec.output
+    if not any(c.change is not None for c in out.checks):
+        return None
+    earlier = ctx.ws.cadence(job).shift(window, 1)
+    if earlier is None:
+        return None
+    state = ctx.ledger.state_row(job, earlier.key)
+    if state is None or state["state"] != "done" or not state.get("output"):
+        return None
+    import polars as pl
+
+    from runner.sources import table_rows
+
+    if out.path is not None:
+        path = ctx.ws.root / state["output"]
+        if not path.exists():
+            return None
+        return pl.scan_parquet(path) if out.file_format == "parquet" else pl.scan_csv(path)
+    return table_rows(_db_url(ctx.ws.root, out.database), out.table, [earlier.key]).lazy()
+
+
+def error_text(exc: BaseException) -> str:
+    """One or two lines for the ledger and the terminal; the traceback goes to the log."""
+    from runner.checks import CheckFailed
+
+    if isinstance(exc, CheckFailed):
+        return str(exc)
+    text = str(exc).strip()
+    inner = text
+    for marker in ("BadRows: ", "InputError: "):
+        if marker in text:
+            inner = text.split(marker, 1)[1]
+    lines = [ln for ln in inner.splitlines() if ln.strip()]
+    first = lines[0] if lines else type(exc).__name__
+    from runner.errors import WeirError
+
+    if isinstance(exc, WeirError) or inner != text:
+        return first
+    return f"{type(exc).__name__}: {first}"
+
+
+def log_path(root: Path, job: str, window: Window) -> Path:
+    return root / "state" / "logs" / job / f"{window.id.replace('/', '_')}.log"
+
+
+def _fail(ctx: RunContext, job: str, window: Window, run_id: int | None, exc: BaseException, stats: Any,
+          attempt: int, t0: float) -> Outcome:
+    from runner.checks import CheckFailed
+
+    message = error_text(exc)
+    path = log_path(ctx.ws.root, job, window)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        with open(path, "a", encoding="utf-8") as fh:
+            fh.write(f"=== {utc_text()} {job} {window.id} attempt {attempt} run {run_id}\n{message}\n\n")
+            fh.write("".join(traceback.format_exception(exc)))
+            fh.write("\n")
+    except OSError:
+        pass
+    if run_id is None:
+        try:
+            prep = prepare(ctx, job, window)
+            run_id = ctx.ledger.start_run(_run_values(ctx, job, window, prep, attempt, False), _texts(prep))
+        except Exception:  # noqa: BLE001 - preparing itself failed; record what we can
+            end_key = Window(window.end, window.end, window.tz).key
+            run_id = ctx.ledger.start_run({"job": job, "window_key": window.key, "window_end": end_key,
+                                           "window_id": window.id, "attempt": attempt})
+    finished = {
+        "status": "failed", "seconds": time.perf_counter() - t0, "error": message,
+        "failed_check": exc.check if isinstance(exc, CheckFailed) else None,
+        "rows_read": stats.rows_read if stats.counted else None, "rows_dropped": stats.rows_dropped,
+        "rows_rejected": stats.rows_rejected,
+    }
+    state = {"window_end": Window(window.end, window.end, window.tz).key, "window_id": window.id,
+             "state": "failed", "seconds": finished["seconds"]}
+    ctx.ledger.finish_run(run_id, job, window.key, None, finished, state)
+    return Outcome(job, window.id, "failed", message, run_id, error=message)

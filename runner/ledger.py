@@ -1,0 +1,457 @@
+"""The ledger: runs, window states, stored texts, claims and locks (SQLAlchemy Core).
+
+Default `sqlite:///state/ledger.sqlite` in the workspace, in WAL mode; any
+SQLAlchemy URL works (`--ledger URL` or `WEIR_LEDGER`). The schema is created
+on first use and carries a version number; a ledger written by a newer weir
+is refused rather than misread.
+
+Tables
+- `runs`: one row per attempt at one window (fingerprint and components,
+  status, times, row counts, output and its digests, error, host, pid, code
+  version, ingestion time).
+- `windows`: the current state per (job, window): the last finished run.
+- `texts`: normalized spec, code and input/upstream manifests by hash, so a
+  later change can be shown as a diff.
+- `claims`: leases that stop two processes running the same window.
+- `locks`: named workspace-wide leases (one `weir tick` at a time).
+
+Instants are stored as RFC 3339 UTC text (`2026-01-01T00:00:00Z`); windows are
+keyed by their UTC start. Claims and locks are taken with a plain INSERT (the
+primary key makes it atomic) or, when the holder's lease has expired, a
+conditional UPDATE; both are atomic on every database, so no dialect-specific
+locking is needed and several hosts can share one PostgreSQL ledger.
+"""
+
+from __future__ import annotations
+
+import os
+import socket
+import time
+from collections.abc import Iterable, Iterator
+from contextlib import contextmanager
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import sqlalchemy as sa
+from sqlalchemy import exc as sa_exc
+
+from runner.errors import LedgerError
+
+if TYPE_CHECKING:
+    import polars as pl
+
+SCHEMA_VERSION = 1
+
+metadata = sa.MetaData()
+
+meta = sa.Table(
+    "weir_meta", metadata,
+    sa.Column("key", sa.String(64), primary_key=True),
+    sa.Column("value", sa.Text, nullable=False),
+)
+
+runs = sa.Table(
+    "weir_runs", metadata,
+    sa.Column("id", sa.Integer, primary_key=True, autoincrement=True),
+    sa.Column("job", sa.String(200), nullable=False),
+    sa.Column("window_key", sa.String(32), nullable=False),
+    sa.Column("window_end", sa.String(32), nullable=False),
+    sa.Column("window_id", sa.String(40), nullable=False),
+    sa.Column("attempt", sa.Integer, nullable=False, default=1),
+    sa.Column("status", sa.String(16), nullable=False),
+    sa.Column("forced", sa.Boolean, nullable=False, default=False),
+    sa.Column("fingerprint", sa.String(64)),
+    sa.Column("fp_spec", sa.String(64)),
+    sa.Column("fp_code", sa.String(64)),
+    sa.Column("fp_input", sa.String(64)),
+    sa.Column("fp_upstream", sa.String(64)),
+    sa.Column("started_at", sa.String(32), nullable=False),
+    sa.Column("finished_at", sa.String(32)),
+    sa.Column("seconds", sa.Float),
+    sa.Column("step_seconds", sa.Float),
+    sa.Column("rows_read", sa.BigInteger),
+    sa.Column("rows_dropped", sa.BigInteger),
+    sa.Column("rows_rejected", sa.BigInteger),
+    sa.Column("rows_written", sa.BigInteger),
+    sa.Column("output", sa.Text),
+    sa.Column("output_digest", sa.String(64)),
+    sa.Column("output_checksum", sa.String(64)),
+    sa.Column("error", sa.Text),
+    sa.Column("failed_check", sa.Text),
+    sa.Column("host", sa.String(200)),
+    sa.Column("pid", sa.Integer),
+    sa.Column("code_version", sa.String(200)),
+    sa.Column("weir_version", sa.String(32)),
+    sa.Column("ingested_at", sa.String(32)),
+    sa.Index("ix_weir_runs_job_window", "job", "window_key"),
+)
+
+windows = sa.Table(
+    "weir_windows", metadata,
+    sa.Column("job", sa.String(200), primary_key=True),
+    sa.Column("window_key", sa.String(32), primary_key=True),
+    sa.Column("window_end", sa.String(32), nullable=False),
+    sa.Column("window_id", sa.String(40), nullable=False),
+    sa.Column("state", sa.String(16), nullable=False),
+    sa.Column("run_id", sa.Integer, nullable=False),
+    sa.Column("fingerprint", sa.String(64)),
+    sa.Column("fp_spec", sa.String(64)),
+    sa.Column("fp_code", sa.String(64)),
+    sa.Column("fp_input", sa.String(64)),
+    sa.Column("fp_upstream", sa.String(64)),
+    sa.Column("output", sa.Text),
+    sa.Column("output_digest", sa.String(64)),
+    sa.Column("good_run_id", sa.Integer),
+    sa.Column("failures", sa.Integer, nullable=False, default=0),
+    sa.Column("ingested_at", sa.String(32)),
+    sa.Column("finished_at", sa.String(32)),
+    sa.Column("seconds", sa.Float),
+    sa.Column("output_state", sa.String(16)),
+)
+
+texts = sa.Table(
+    "weir_texts", metadata,
+    sa.Column("hash", sa.String(64), primary_key=True),
+    sa.Column("kind", sa.String(16), nullable=False),
+    sa.Column("body", sa.Text, nullable=False),
+)
+
+claims = sa.Table(
+    "weir_claims", metadata,
+    sa.Column("job", sa.String(200), primary_key=True),
+    sa.Column("window_key", sa.String(32), primary_key=True),
+    sa.Column("owner", sa.String(200), nullable=False),
+    sa.Column("expires", sa.Float, nullable=False),
+)
+
+locks = sa.Table(
+    "weir_locks", metadata,
+    sa.Column("name", sa.String(200), primary_key=True),
+    sa.Column("owner", sa.String(200), nullable=False),
+    sa.Column("expires", sa.Float, nullable=False),
+)
+
+STATE_COLUMNS = [c.name for c in windows.columns]
+
+
+def utc_text(instant: datetime | None = None) -> str:
+    """RFC 3339 UTC with microseconds, for run times."""
+    value = instant or datetime.now(UTC)
+    return value.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def default_url(root: Path) -> str:
+    return f"sqlite:///{root / 'state' / 'ledger.sqlite'}"
+
+
+def owner_id() -> str:
+    """This process, as a claim owner: host:pid:start."""
+    return f"{socket.gethostname()}:{os.getpid()}:{int(time.time() * 1000) % 10_000_000}"
+
+
+class Ledger:
+    """A connection to one ledger database. Cheap to create; one per process."""
+
+    def __init__(self, url: str, create: bool = True):
+        self.url = url
+        self._sqlite_path: Path | None = None
+        try:
+            parsed = sa.engine.make_url(url)
+        except sa_exc.ArgumentError as exc:
+            raise LedgerError(f"bad ledger URL {url!r}: {exc}") from None
+        self.is_sqlite = parsed.get_backend_name() == "sqlite"
+        connect_args: dict[str, Any] = {}
+        if self.is_sqlite:
+            if parsed.database and parsed.database != ":memory:":
+                self._sqlite_path = Path(parsed.database)
+            connect_args = {"timeout": 60, "isolation_level": None}
+        self.exists = self._sqlite_path is None or self._sqlite_path.exists()
+        if not self.exists and not create:
+            self.engine = None
+            return
+        if self._sqlite_path is not None:
+            self._sqlite_path.parent.mkdir(parents=True, exist_ok=True)
+        try:
+            self.engine = sa.create_engine(url, connect_args=connect_args, future=True)
+        except (sa_exc.ArgumentError, sa_exc.NoSuchModuleError, ImportError) as exc:
+            raise LedgerError(f"cannot open ledger {url!r}: {exc}") from None
+        if self.is_sqlite:
+            sa.event.listen(self.engine, "connect", _sqlite_pragmas)
+            sa.event.listen(self.engine, "begin", _sqlite_begin)
+        self._reader = self.engine.execution_options(weir_read=True)
+        self._ensure_schema()
+        self._stored_texts: set[str] = set()
+
+    # ------------------------------------------------------------ plumbing
+
+    @contextmanager
+    def _tx(self, read: bool = False) -> Iterator[sa.Connection]:
+        """A transaction; `read` ones do not take SQLite's write lock up front."""
+        if self.engine is None:
+            raise LedgerError("the ledger does not exist yet (nothing has run)")
+        engine = self._reader if read else self.engine
+        try:
+            with engine.begin() as conn:
+                yield conn
+        except sa_exc.OperationalError as exc:
+            raise LedgerError(_explain(self.url, exc)) from None
+        except sa_exc.DatabaseError as exc:
+            raise LedgerError(_explain(self.url, exc)) from None
+
+    def _ensure_schema(self) -> None:
+        try:
+            with self.engine.begin() as conn:
+                insp = sa.inspect(conn)
+                if insp.has_table(meta.name):
+                    row = conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).first()
+                    version = int(row[0]) if row else 0
+                    if version > SCHEMA_VERSION:
+                        raise LedgerError(
+                            f"the ledger at {self.url} was written by a newer weir (schema version {version}; "
+                            f"this weir knows up to {SCHEMA_VERSION}); upgrade weir to use it")
+                    if version == SCHEMA_VERSION:
+                        return
+                metadata.create_all(conn)
+                conn.execute(sa.delete(meta).where(meta.c.key == "schema_version"))
+                conn.execute(sa.insert(meta).values(key="schema_version", value=str(SCHEMA_VERSION)))
+        except (sa_exc.OperationalError, sa_exc.DatabaseError) as exc:
+            raise LedgerError(_explain(self.url, exc)) from None
+
+    def dispose(self) -> None:
+        if self.engine is not None:
+            self.engine.dispose()
+
+    # ------------------------------------------------------------ texts
+
+    def put_texts(self, conn: sa.Connection, items: Iterable[tuple[str, str, str]]) -> None:
+        """Store (hash, kind, body) unless already there."""
+        for h, kind, body in items:
+            if h in self._stored_texts:
+                continue
+            found = conn.execute(sa.select(texts.c.hash).where(texts.c.hash == h)).first()
+            if not found:
+                conn.execute(sa.insert(texts).values(hash=h, kind=kind, body=body))
+            self._stored_texts.add(h)
+
+    def text(self, h: str | None) -> str | None:
+        if not h or self.engine is None:
+            return None
+        with self._tx(read=True) as conn:
+            row = conn.execute(sa.select(texts.c.body).where(texts.c.hash == h)).first()
+        return row[0] if row else None
+
+    # ------------------------------------------------------------ claims and locks
+
+    def claim(self, job: str, key: str, owner: str, ttl: float) -> bool:
+        """Take the claim on (job, window) unless another live owner holds it."""
+        return self._lease(claims, {"job": job, "window_key": key}, owner, ttl)
+
+    def renew(self, job: str, key: str, owner: str, ttl: float) -> bool:
+        with self._tx() as conn:
+            res = conn.execute(sa.update(claims).where(
+                claims.c.job == job, claims.c.window_key == key, claims.c.owner == owner
+            ).values(expires=time.time() + ttl))
+        return res.rowcount == 1
+
+    def release(self, job: str, key: str, owner: str, conn: sa.Connection | None = None) -> None:
+        stmt = sa.delete(claims).where(claims.c.job == job, claims.c.window_key == key, claims.c.owner == owner)
+        if conn is not None:
+            conn.execute(stmt)
+            return
+        with self._tx() as c:
+            c.execute(stmt)
+
+    def claimed(self, job: str | None = None) -> dict[tuple[str, str], str]:
+        """Live claims: (job, window_key) -> owner."""
+        if self.engine is None:
+            return {}
+        q = sa.select(claims.c.job, claims.c.window_key, claims.c.owner).where(claims.c.expires > time.time())
+        if job is not None:
+            q = q.where(claims.c.job == job)
+        with self._tx(read=True) as conn:
+            return {(r[0], r[1]): r[2] for r in conn.execute(q)}
+
+    def lock(self, name: str, owner: str, ttl: float) -> bool:
+        return self._lease(locks, {"name": name}, owner, ttl)
+
+    def renew_lock(self, name: str, owner: str, ttl: float) -> bool:
+        with self._tx() as conn:
+            res = conn.execute(sa.update(locks).where(locks.c.name == name, locks.c.owner == owner)
+                               .values(expires=time.time() + ttl))
+        return res.rowcount == 1
+
+    def unlock(self, name: str, owner: str) -> None:
+        with self._tx() as conn:
+            conn.execute(sa.delete(locks).where(locks.c.name == name, locks.c.owner == owner))
+
+    def _lease(self, table: sa.Table, key: dict[str, str], owner: str, ttl: float) -> bool:
+        now = time.time()
+        where = [table.c[k] == v for k, v in key.items()]
+        try:
+            with self._tx() as conn:
+                conn.execute(sa.insert(table).values(**key, owner=owner, expires=now + ttl))
+            return True
+        except sa_exc.IntegrityError:
+            pass
+        with self._tx() as conn:
+            res = conn.execute(sa.update(table).where(
+                *where, sa.or_(table.c.expires < now, table.c.owner == owner)
+            ).values(owner=owner, expires=now + ttl))
+        return res.rowcount == 1
+
+    # ------------------------------------------------------------ runs
+
+    def start_run(self, values: dict[str, Any], stored: Iterable[tuple[str, str, str]] = ()) -> int:
+        """Record a run attempt as `running`; store its texts; return its id."""
+        row = {
+            "status": "running", "started_at": utc_text(), "host": socket.gethostname(), "pid": os.getpid(),
+            **values,
+        }
+        with self._tx() as conn:
+            self.put_texts(conn, stored)
+            res = conn.execute(sa.insert(runs).values(**row))
+            return int(res.inserted_primary_key[0])
+
+    def finish_run(self, run_id: int, job: str, key: str, owner: str | None, values: dict[str, Any],
+                   window: dict[str, Any]) -> None:
+        """Close a run and update its window's state and claim, in one transaction.
+
+        `values` updates the run row (status done or failed, figures, error);
+        `window` holds the state row to write for (job, key).
+        """
+        values = {"finished_at": utc_text(), **values}
+        with self._tx() as conn:
+            conn.execute(sa.update(runs).where(runs.c.id == run_id).values(**values))
+            current = conn.execute(sa.select(windows).where(
+                windows.c.job == job, windows.c.window_key == key)).mappings().first()
+            state = dict(window)
+            state.update(job=job, window_key=key, run_id=run_id, finished_at=values["finished_at"])
+            if state["state"] == "failed" and current is not None:
+                # keep the last good output's identity: consumers and digests still refer to it
+                for col in ("output", "output_digest", "good_run_id", "fingerprint", "fp_spec", "fp_code",
+                            "fp_input", "fp_upstream", "ingested_at"):
+                    if state.get(col) is None:
+                        state[col] = current[col]
+                state["failures"] = (current["failures"] or 0) + 1
+            elif state["state"] == "failed":
+                state["failures"] = 1
+            else:
+                state["failures"] = 0
+                state["good_run_id"] = run_id
+            if current is None:
+                conn.execute(sa.insert(windows).values(**state))
+            else:
+                conn.execute(sa.update(windows).where(
+                    windows.c.job == job, windows.c.window_key == key).values(**state))
+            if owner is not None:
+                self.release(job, key, owner, conn)
+
+    def set_output_state(self, job: str, keys: list[str], value: str | None) -> None:
+        """Mark outputs found missing or changed outside weir (`weir verify`)."""
+        with self._tx() as conn:
+            for key in keys:
+                conn.execute(sa.update(windows).where(windows.c.job == job, windows.c.window_key == key)
+                             .values(output_state=value))
+
+    # ------------------------------------------------------------ reading
+
+    def states(self, job: str, lo_key: str | None = None, hi_key: str | None = None) -> pl.DataFrame:
+        """Every window state row of `job` (optionally window_key in [lo, hi)), one query."""
+        import polars as pl
+
+        schema = _state_schema()
+        if self.engine is None:
+            return pl.DataFrame(schema=schema)
+        q = sa.select(*[windows.c[c] for c in STATE_COLUMNS]).where(windows.c.job == job)
+        if lo_key is not None:
+            q = q.where(windows.c.window_key >= lo_key)
+        if hi_key is not None:
+            q = q.where(windows.c.window_key < hi_key)
+        with self._tx(read=True) as conn:
+            rows = conn.execute(q).all()
+        return pl.DataFrame([tuple(r) for r in rows], schema=schema, orient="row")
+
+    def state_rows(self, job: str, keys: Iterable[str]) -> dict[str, dict[str, Any]]:
+        """Window states by key for the given keys of one job (one range query)."""
+        keys = list(keys)
+        if not keys or self.engine is None:
+            return {}
+        q = sa.select(windows).where(windows.c.job == job, windows.c.window_key >= min(keys),
+                                     windows.c.window_key <= max(keys))
+        wanted = set(keys)
+        with self._tx(read=True) as conn:
+            return {r["window_key"]: dict(r) for r in conn.execute(q).mappings() if r["window_key"] in wanted}
+
+    def state_row(self, job: str, key: str) -> dict[str, Any] | None:
+        return self.state_rows(job, [key]).get(key)
+
+    def run(self, run_id: int) -> dict[str, Any] | None:
+        if self.engine is None:
+            return None
+        with self._tx(read=True) as conn:
+            row = conn.execute(sa.select(runs).where(runs.c.id == run_id)).mappings().first()
+        return dict(row) if row else None
+
+    def history(self, job: str, key: str | None = None, limit: int | None = None) -> list[dict[str, Any]]:
+        """Runs of `job` (of one window when `key`), newest first."""
+        if self.engine is None:
+            return []
+        q = sa.select(runs).where(runs.c.job == job)
+        if key is not None:
+            q = q.where(runs.c.window_key == key)
+        q = q.order_by(runs.c.id.desc())
+        if limit:
+            q = q.limit(limit)
+        with self._tx(read=True) as conn:
+            return [dict(r) for r in conn.execute(q).mappings()]
+
+    def run_stats(self, job: str) -> pl.DataFrame:
+        """Finished runs of `job` (seconds, step seconds, rows), for estimates and advice."""
+        import polars as pl
+
+        cols = ["window_key", "status", "seconds", "step_seconds", "rows_read", "rows_written", "started_at"]
+        schema = {"window_key": pl.String, "status": pl.String, "seconds": pl.Float64,
+                  "step_seconds": pl.Float64, "rows_read": pl.Int64, "rows_written": pl.Int64,
+                  "started_at": pl.String}
+        if self.engine is None:
+            return pl.DataFrame(schema=schema)
+        q = sa.select(*[runs.c[c] for c in cols]).where(runs.c.job == job, runs.c.status.in_(["done", "failed"]))
+        with self._tx(read=True) as conn:
+            rows = conn.execute(q).all()
+        return pl.DataFrame([tuple(r) for r in rows], schema=schema, orient="row")
+
+
+def _state_schema() -> dict[str, Any]:
+    import polars as pl
+
+    types = {sa.Integer: pl.Int64, sa.BigInteger: pl.Int64, sa.Float: pl.Float64, sa.Boolean: pl.Boolean}
+    out = {}
+    for col in windows.columns:
+        out[col.name] = next((v for k, v in types.items() if isinstance(col.type, k)), pl.String)
+    return out
+
+
+def _sqlite_pragmas(dbapi_conn: Any, _record: Any) -> None:
+    cur = dbapi_conn.cursor()
+    cur.execute("PRAGMA journal_mode=WAL")
+    cur.execute("PRAGMA synchronous=NORMAL")
+    cur.execute("PRAGMA busy_timeout=60000")
+    cur.close()
+
+
+def _sqlite_begin(conn: sa.Connection) -> None:
+    # pysqlite's own transaction handling is off (isolation_level=None): begin
+    # explicitly, and IMMEDIATE for writers so that a writer waits at the start
+    # instead of failing mid-transaction when another process writes.
+    read = conn.get_execution_options().get("weir_read", False)
+    conn.exec_driver_sql("BEGIN" if read else "BEGIN IMMEDIATE")
+
+
+def _explain(url: str, exc: Exception) -> str:
+    text = str(getattr(exc, "orig", exc)) or type(exc).__name__
+    if "locked" in text:
+        return f"the ledger {url} is locked by another process and stayed locked: {text}"
+    if "not a database" in text or "malformed" in text:
+        return f"the ledger {url} is not a readable database ({text}); restore it from a backup or move it away"
+    return f"ledger {url}: {text}"

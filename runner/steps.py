@@ -1,0 +1,135 @@
+"""Steps: polars SQL over the inputs, or a Python function. Lazy end to end.
+
+A SQL step sees every input by name, every earlier step that has a `name:`,
+and `bounds(window_start, window_end)`, one row of UTC datetimes. A python
+step `package.module:function` (imported from the workspace) is called with
+the inputs and earlier named steps as keyword arguments (LazyFrames; only
+those its signature accepts, unless it takes **kwargs) plus `window`, and
+returns a LazyFrame or DataFrame. The last step's result is the output.
+"""
+
+from __future__ import annotations
+
+import importlib
+import importlib.util
+import inspect
+import sys
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from runner.errors import WeirError
+from runner.spec import JobSpec, PythonStep, SqlStep
+from runner.sqlcheck import bounds_frame, file_functions
+from runner.timeutil import to_us
+
+if TYPE_CHECKING:
+    import polars as pl
+
+    from runner.windows import Window
+
+
+class StepError(WeirError):
+    """A step could not be built (bad SQL, python step not importable, wrong return type)."""
+
+
+def _module_file(root: Path, module: str) -> Path:
+    _on_path(root)
+    try:
+        spec = importlib.util.find_spec(module)
+    except (ImportError, ValueError) as exc:
+        raise StepError(f"python step module {module!r} cannot be found: {exc}") from None
+    if spec is None or spec.origin is None or not spec.has_location:
+        raise StepError(f"python step module {module!r} cannot be found in the workspace or the environment")
+    return Path(spec.origin)
+
+
+def _on_path(root: Path) -> None:
+    text = str(root)
+    if text not in sys.path:
+        sys.path.insert(0, text)
+
+
+def code_pieces(spec: JobSpec, root: Path) -> list[tuple[str, str]]:
+    """(label, text) for each step: the SQL, or the python module's source."""
+    pieces = []
+    for i, step in enumerate(spec.steps):
+        label = f"{i + 1}" + (f" ({step.name})" if step.name else "")
+        if isinstance(step, SqlStep):
+            pieces.append((f"{label} sql", step.sql))
+        else:
+            module = step.python.split(":")[0]
+            path = _module_file(root, module)
+            try:
+                text = path.read_bytes().decode("utf-8", errors="replace")
+            except OSError as exc:
+                raise StepError(f"cannot read python step module {path}: {exc}") from None
+            pieces.append((f"{label} python {step.python}", text))
+    return pieces
+
+
+_loaded: dict[str, tuple[float, int]] = {}
+
+
+def load_callable(root: Path, ref: str) -> Any:
+    """Import `package.module:function` from the workspace (reloaded when its file changed)."""
+    module_name, func_name = ref.split(":")
+    path = _module_file(root, module_name)
+    stamp = (path.stat().st_mtime, path.stat().st_size)
+    try:
+        if module_name in sys.modules and _loaded.get(module_name) != stamp:
+            module = importlib.reload(sys.modules[module_name])
+        else:
+            module = importlib.import_module(module_name)
+    except Exception as exc:
+        raise StepError(f"python step {ref}: importing {module_name} failed: {type(exc).__name__}: {exc}") from exc
+    _loaded[module_name] = stamp
+    func = getattr(module, func_name, None)
+    if not callable(func):
+        raise StepError(f"python step {ref}: {module_name} has no function {func_name!r}")
+    return func
+
+
+def build(spec: JobSpec, inputs: dict[str, pl.LazyFrame], window: Window, root: Path) -> pl.LazyFrame:
+    """The lazy result of all steps for one window (nothing is computed yet)."""
+    import polars as pl
+
+    frames: dict[str, pl.LazyFrame] = dict(inputs)
+    result: pl.LazyFrame | None = None
+    bounds = bounds_frame(to_us(window.start), to_us(window.end))
+    for i, step in enumerate(spec.steps):
+        where = f"step {i + 1}" + (f" ({step.name})" if step.name else "")
+        if isinstance(step, SqlStep):
+            used = file_functions(step.sql)
+            if used:
+                raise StepError(f"{where}: SQL may not read files itself ({', '.join(used)}); declare inputs")
+            ctx = pl.SQLContext(frames={**frames, "bounds": bounds}, eager=False)
+            try:
+                result = ctx.execute(step.sql)
+            except pl.exceptions.PolarsError as exc:
+                raise StepError(f"{where}: {type(exc).__name__}: {str(exc).splitlines()[0]}") from None
+        else:
+            assert isinstance(step, PythonStep)
+            func = load_callable(root, step.python)
+            kwargs = _arguments(func, frames, window)
+            out = func(**kwargs)
+            if isinstance(out, pl.DataFrame):
+                out = out.lazy()
+            if not isinstance(out, pl.LazyFrame):
+                raise StepError(f"{where}: {step.python} returned {type(out).__name__}, "
+                                "not a polars LazyFrame or DataFrame")
+            result = out
+        if step.name:
+            frames[step.name] = result
+    assert result is not None
+    return result
+
+
+def _arguments(func: Any, frames: dict[str, pl.LazyFrame], window: Window) -> dict[str, Any]:
+    available: dict[str, Any] = {**frames, "window": window}
+    try:
+        params = inspect.signature(func).parameters
+    except (TypeError, ValueError):
+        return available
+    if any(p.kind is inspect.Parameter.VAR_KEYWORD for p in params.values()):
+        return available
+    return {k: v for k, v in available.items() if k in params}
