@@ -139,7 +139,7 @@ def run(root: Path | str, job: str, window_id: str, ledger_url: str | None = Non
     """Run one window of `job` (skipped when current unless `force`). Returns an Outcome."""
     from runner.execute import Outcome, RunContext, run_window
 
-    ws = load_workspace(root)
+    ws = load_workspace(root, thorough=False)
     ws.job(job)
     window = find_window(ws, job, window_id)
     cad = ws.cadence(job)
@@ -198,7 +198,7 @@ def backfill(root: Path | str, jobs: list[str], lo: str | None, hi: str | None, 
     """
     from runner.pool import Settings, default_workers, run_tasks
 
-    ws = load_workspace(root)
+    ws = load_workspace(root, thorough=False)
     if not jobs:
         raise UsageError("name at least one job to backfill (see `weir check` for the list)")
     first = ws.job(jobs[0]).name
@@ -222,9 +222,293 @@ def backfill(root: Path | str, jobs: list[str], lo: str | None, hi: str | None, 
 def history(root: Path | str, job: str, window_id: str | None = None, ledger_url: str | None = None,
             limit: int | None = None) -> list[dict[str, Any]]:
     """Runs of `job` (of one window), newest first, as plain dicts."""
-    ws = load_workspace(root)
+    ws = load_workspace(root, thorough=False)
     ws.job(job)
     key = find_window(ws, job, window_id).key if window_id else None
     ledger = open_ledger(ws.root, ledger_url, create=False)
     rows = ledger.history(job, key, limit)
     return rows
+
+
+# ---------------------------------------------------------------- planning and explaining
+
+
+def _survey(ws: Workspace, ledger, at: datetime, jobs: list[str] | None, recheck_all: bool = False):
+    from runner.status import survey
+
+    return survey(ws, ledger, at, jobs, recheck_all)
+
+
+def _item(item) -> dict[str, Any]:
+    return {"job": item.job, "window": item.window.id, "window_utc": item.window.key, "state": item.state,
+            "reason": item.reason, "late": item.late}
+
+
+def plan(root: Path | str, jobs: list[str], at: datetime, ledger_url: str | None = None) -> list[dict[str, Any]]:
+    """Per job in dependency order: due windows (missing, failed with retries left, stale) and waiting ones."""
+    from runner.planner import job_plans
+
+    ws = load_workspace(root, thorough=False)
+    ledger = open_ledger(ws.root, ledger_url, create=False)
+    assessed = _survey(ws, ledger, at, jobs)
+    out = []
+    for p in job_plans(ws, assessed, cap=False):
+        out.append({
+            "job": p.job, "due": [_item(i) for i in p.due], "waiting": [_item(i) for i in p.waiting],
+            "counts": p.counts, "late": p.late, "max_catch_up": ws.jobs[p.job].spec.max_catch_up,
+        })
+    return out
+
+
+@dataclass
+class TickResult:
+    ran: bool
+    holder: str | None = None
+    outcomes: list[Any] = field(default_factory=list)
+    held_back: dict[str, int] = field(default_factory=dict)
+    waiting: dict[str, int] = field(default_factory=dict)
+
+    def counts(self) -> dict[str, int]:
+        out: dict[str, int] = {}
+        for o in self.outcomes:
+            out[o.status] = out.get(o.status, 0) + 1
+        return out
+
+
+def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers: int | None = None,
+         should_stop=None, on_outcome=None, ws: Workspace | None = None) -> TickResult:
+    """Plan, then run what is due (oldest first, `max_catch_up` per job), one tick per workspace at a time."""
+    from runner.execute import RunContext
+    from runner.ledger import HeldLock, owner_id
+    from runner.planner import job_plans, tasks_for
+    from runner.pool import Settings, run_tasks
+
+    ws = ws or load_workspace(root, thorough=False)
+    ledger = open_ledger(ws.root, ledger_url)
+    owner = owner_id()
+    idle = None
+    try:
+        with HeldLock(ledger, "tick", owner) as lock:
+            if not lock.acquired:
+                return TickResult(ran=False, holder=lock.holder())
+            assessed = _survey(ws, ledger, at, None)
+            plans = job_plans(ws, assessed, cap=True)
+            items = [i for p in plans for i in p.due]
+            if not items and not any(p.counts.get("running") for p in plans):
+                idle = assessed  # nothing due and nobody else mid-window: an idle tick may stop early
+            # waiting windows whose producers run in this tick go along; they run if those finish
+            runnable = {(i.job, i.window.key) for i in items}
+            for p in plans:
+                for w in p.waiting:
+                    if any((src.job, pw.key) in runnable for src, pw in _producer_windows(ws, w)):
+                        items.append(w)
+            tasks = tasks_for(ws, _dependency_sorted(ws, items))
+            settings = Settings(root=ws.root, ledger_url=ledger.url)
+            outcomes = run_tasks(tasks, settings, workers or 1, on_outcome, should_stop,
+                                 context=RunContext(ws=ws, ledger=ledger, owner=owner))
+            return TickResult(True, None, outcomes, {p.job: p.held_back for p in plans if p.held_back},
+                              {p.job: len(p.waiting) for p in plans if p.waiting})
+    finally:
+        ledger.dispose()  # closes SQLite cleanly (a checkpoint) before the gate looks at its file
+        _update_gate(ws, ledger_url, idle, at)
+
+
+def stale(root: Path | str, jobs: list[str], at: datetime, ledger_url: str | None = None
+          ) -> dict[str, Any]:
+    """Every done window whose fingerprint differs from now, by component; grouped ranges and every window."""
+    import polars as pl
+
+    from runner.planner import stale_ranges
+
+    ws = load_workspace(root, thorough=False)
+    ledger = open_ledger(ws.root, ledger_url, create=False)
+    assessed = _survey(ws, ledger, at, jobs, recheck_all=True)
+    windows_out = []
+    for job, frame in assessed.items():
+        for row in frame.filter(pl.col("state") == "stale").select("window", "window_key", "reasons",
+                                                                      "pending").iter_rows(named=True):
+            windows_out.append({"job": job, "window": row["window"], "window_utc": row["window_key"],
+                                "reasons": row["reasons"], "pending_upstream": row["pending"]})
+    ranges = [r.__dict__ for r in stale_ranges(ws, assessed)]
+    return {"ranges": ranges, "windows": windows_out}
+
+
+def why(root: Path | str, job: str, window_id: str, at: datetime, ledger_url: str | None = None) -> dict[str, Any]:
+    """One window explained: state, what changed since its recorded run, lateness, last run figures."""
+    import polars as pl
+
+    from runner import explain
+    from runner.execute import prepare, spec_and_code
+    from runner.planner import parse_run_time
+
+    ws = load_workspace(root, thorough=False)
+    ws.job(job)
+    window = find_window(ws, job, window_id)
+    ledger = open_ledger(ws.root, ledger_url, create=False)
+    cad = ws.cadence(job)
+    out: dict[str, Any] = {"job": job, "window": window.id, "window_utc": window.key,
+                           "end": format_instant(window.end, cad.tz), "length": format_duration(window.length)}
+    if window.end + cad.settle > at:
+        out.update(state="not due", reason=f"due at {format_instant(window.end + cad.settle, cad.tz)}")
+        return out
+    assessed = _survey(ws, ledger, at, [job], recheck_all=True)[job]
+    row = assessed.filter(pl.col("window_key") == window.key).row(0, named=True)
+    out.update(state=row["state"], reason=row["reason"], reasons=row["reasons"], pending_upstream=row["pending"])
+    state = ledger.state_row(job, window.key)
+    runs = ledger.history(job, window.key, limit=1)
+    last = runs[0] if runs else None
+    if last:
+        out["last_run"] = {k: last[k] for k in (
+            "id", "status", "started_at", "finished_at", "seconds", "step_seconds", "rows_read", "rows_dropped",
+            "rows_rejected", "rows_written", "output", "output_digest", "fingerprint", "error", "failed_check",
+            "code_version", "host", "forced")}
+    if state is not None and state.get("ingested_at"):
+        ingested = parse_run_time(state["ingested_at"])
+        lateness = ingested - window.end
+        late_after = ws.jobs[job].spec.late_after
+        out["ingestion"] = {
+            "newest_input": state["ingested_at"],
+            "after_window_end": format_duration(lateness) if lateness.total_seconds() > 0 else "PT0S",
+            "late": bool(late_after is not None and lateness > late_after),
+            "late_after": format_duration(late_after) if late_after else None,
+        }
+    if state is not None and state["state"] in ("done", "failed") and state.get("fp_spec"):
+        ctx = _context(ws, ledger)
+        prep = prepare(ctx, job, window)
+        spec_now, code_now = spec_and_code(ws, job)
+        changes: dict[str, Any] = {}
+        if state["fp_spec"] != spec_now.hash:
+            changes["spec"] = explain.spec_changes(ledger.text(state["fp_spec"]), spec_now.text)
+        if state["fp_code"] != code_now.hash:
+            changes["code"] = explain.code_diff(ledger.text(state["fp_code"]), code_now.text)
+        if state["fp_input"] != prep.parts["input"].hash:
+            changes["input"] = explain.input_changes(ledger.text(state["fp_input"]), prep.parts["input"].text)
+        if state["fp_upstream"] != prep.parts["upstream"].hash:
+            changes["upstream"] = explain.upstream_changes(ledger.text(state["fp_upstream"]),
+                                                           prep.parts["upstream"].text)
+        if state.get("output_state"):
+            changes["output"] = f"the output was found {state['output_state']} by weir verify"
+        out["changes"] = changes
+        if prep.waiting:
+            out["waiting"] = prep.waiting
+    return out
+
+
+def _context(ws: Workspace, ledger):
+    from runner.execute import RunContext
+
+    return RunContext(ws=ws, ledger=ledger)
+
+
+def impact(root: Path | str, at: datetime, ledger_url: str | None = None, workers: int | None = None
+           ) -> list[dict[str, Any]]:
+    """Per job: how many done windows the current job files would recompute, by reason, and how long."""
+    import polars as pl
+
+    from runner.pool import default_workers
+
+    ws = load_workspace(root, thorough=False)
+    ledger = open_ledger(ws.root, ledger_url, create=False)
+    assessed = _survey(ws, ledger, at, None)
+    workers = workers or default_workers()
+    out = []
+    for job, frame in assessed.items():
+        stale_rows = frame.filter(pl.col("state") == "stale")
+        by_reason: dict[str, int] = {}
+        for reasons in stale_rows["reasons"].to_list():
+            for r in reasons:
+                by_reason[r] = by_reason.get(r, 0) + 1
+        stats = ledger.run_stats(job).filter(pl.col("status") == "done")
+        median = stats["seconds"].median() if stats.height else None
+        count = stale_rows.height
+        out.append({
+            "job": job, "windows": count, "by_reason": by_reason,
+            "pending_upstream": int(stale_rows["pending"].sum()) if count else 0,
+            "median_seconds": median,
+            "estimated_seconds": (median * count / workers) if median is not None else None,
+        })
+    return out
+
+
+def verify(root: Path | str, jobs: list[str], ledger_url: str | None = None) -> list[dict[str, Any]]:
+    """Re-read every done window's output; report (and mark stale by output) missing or changed ones."""
+    import polars as pl
+
+    from runner.sinks import read_table_digest
+    from runner.sources import _expand_sqlite, file_sha256
+
+    ws = load_workspace(root, thorough=False)
+    ledger = open_ledger(ws.root, ledger_url, create=False)
+    problems = []
+    for job in ws.select(jobs):
+        out = ws.jobs[job].spec.output
+        states = ledger.states(job).filter(pl.col("state") == "done")
+        bad: dict[str, list[str]] = {"missing": [], "changed": []}
+        fine: list[str] = []
+        for row in states.iter_rows(named=True):
+            if out.path is not None:
+                path = ws.root / row["output"]
+                if not path.exists():
+                    verdict = "missing"
+                elif row["output_checksum"] and file_sha256(path) != row["output_checksum"]:
+                    verdict = "changed"
+                else:
+                    verdict = None
+            else:
+                digest = read_table_digest(_expand_sqlite(ws.root, out.database), out.table, row["window_key"])
+                verdict = "missing" if digest is None else ("changed" if digest != row["output_digest"] else None)
+            if verdict:
+                bad[verdict].append(row["window_key"])
+                problems.append({"job": job, "window": row["window_id"], "output": row["output"],
+                                 "problem": verdict})
+            elif row["output_state"]:
+                fine.append(row["window_key"])
+        for verdict, keys in bad.items():
+            if keys:
+                ledger.set_output_state(job, keys, verdict)
+        if fine:
+            ledger.set_output_state(job, fine, None)
+    return problems
+
+
+def _producer_windows(ws: Workspace, item) -> list[tuple[Any, Any]]:
+    from runner.graph import upstream_windows
+    from runner.spec import JobInput as _JobInput
+
+    out = []
+    for source in ws.jobs[item.job].spec.inputs.values():
+        if isinstance(source, _JobInput):
+            for pw in upstream_windows(ws.cadence(item.job), item.window, ws.cadence(source.job), source,
+                                       same_job=source.job == item.job):
+                out.append((source, pw))
+    return out
+
+
+def _dependency_sorted(ws: Workspace, items: list) -> list:
+    rank = {name: i for i, name in enumerate(ws.order)}
+    return sorted(items, key=lambda i: (rank[i.job], i.window.start))
+
+
+def _update_gate(ws: Workspace, ledger_url: str | None, assessed, at: datetime) -> None:
+    """Write the tick gate after a tick that found nothing due (`assessed`), else remove it."""
+    from runner import gate
+    from runner.planner import next_change
+    from runner.spec import FileInput as _FileInput
+    from runner.spec import PythonStep
+    from runner.steps import StepError, _module_file
+
+    if assessed is None:
+        gate.clear(ws.root)
+        return
+    templates = sorted({s.files for j in ws.jobs.values() for s in j.spec.inputs.values()
+                        if isinstance(s, _FileInput)})
+    modules = []
+    try:
+        for job in ws.jobs.values():
+            for step in job.spec.steps:
+                if isinstance(step, PythonStep):
+                    modules.append(str(_module_file(ws.root, step.python.split(":")[0])))
+    except StepError:
+        gate.clear(ws.root)
+        return
+    gate.write(ws.root, ledger_url, templates, sorted(set(modules)), next_change(ws, assessed, at))

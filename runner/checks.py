@@ -127,7 +127,7 @@ def column_rules(name: str, column: Column, source: pl.DataType, local_tz: str) 
     if column.values is not None:
         allowed = _literals(column, column.values)
         rules.append(Rule(name, f"one of {', '.join(map(str, column.values))}",
-                          typed.is_not_null() & ~typed.is_in(pl.Series(allowed, dtype=polars_dtype(column.type)))))
+                          typed.is_not_null() & ~typed.is_in(pl.Series(allowed, dtype=polars_dtype(column.type)).implode())))
     if column.min is not None:
         low = _literals(column, [column.min])[0]
         rules.append(Rule(name, f"min {column.min}", typed.is_not_null() & (typed < pl.lit(low, dtype=polars_dtype(column.type)))))

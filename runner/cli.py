@@ -365,6 +365,301 @@ def _n(value: Any) -> str:
     return "" if value is None else str(value)
 
 
+def _ranges(items: list[dict[str, Any]]) -> list[tuple[dict[str, Any], dict[str, Any], int]]:
+    """Group consecutive plan items with the same state and reason: (first, last, count)."""
+    out: list[list[Any]] = []
+    for item in items:
+        if out and out[-1][1]["reason"] == item["reason"] and out[-1][1]["state"] == item["state"]:
+            out[-1][1] = item
+            out[-1][2] += 1
+        else:
+            out.append([item, item, 1])
+    return [(a, b, n) for a, b, n in out]
+
+
+@cli.command()
+@click.argument("jobs", nargs=-1)
+@at_option
+@json_option
+@click.pass_obj
+def plan(obj: Context, jobs: tuple[str, ...], at: str | None, as_json: bool) -> None:
+    """Show what is due now and why (missing, failed with retries left, stale), and what is waiting.
+
+    A window is due when its end plus the job's settle time has passed. Input
+    files are re-checked only within each job's recheck horizon (default 3 days);
+    `weir stale` re-checks every window. Nothing is run or written.
+    """
+    from runner import api
+
+    result = api.plan(obj.root, list(jobs), _now(at), obj.ledger)
+    if as_json:
+        _emit_json(result)
+        return
+    console = _console()
+    total = 0
+    for p in result:
+        c = p["counts"]
+        summary = ", ".join(f"{k} {v}" for k, v in c.items() if v) or "no due windows yet"
+        late = f", late {p['late']}" if p["late"] else ""
+        console.print(f"[bold]{p['job']}[/]  {len(p['due'])} to run, {len(p['waiting'])} waiting  ({summary}{late})")
+        for first, last, n in _ranges(p["due"]):
+            span = first["window"] if n == 1 else f"{first['window']} .. {last['window']}"
+            console.print(f"  run     {span}  {n} window(s)  {first['reason']}")
+        for first, last, n in _ranges(p["waiting"]):
+            span = first["window"] if n == 1 else f"{first['window']} .. {last['window']}"
+            console.print(f"  waiting {span}  {n} window(s)  {first['reason']}")
+        total += len(p["due"])
+    console.print(f"{total} window(s) to run" + (" (weir tick runs them)" if total else ""))
+
+
+@cli.command()
+@at_option
+@workers_option
+@json_option
+@click.pass_obj
+def tick(obj: Context, at: str | None, workers: int | None, as_json: bool) -> None:
+    """Plan, then run what is due, oldest first (at most max_catch_up windows per job).
+
+    One tick runs at a time per workspace: a second one exits at once with
+    status 0, so `* * * * * cd WORKSPACE && weir tick` is safe even when a tick
+    outlasts a minute. Exit status 1 when a window failed.
+    """
+    from runner import gate
+
+    now = _now(at)
+    held = gate.fresh(obj.root.resolve(), now, obj.ledger)
+    if held is not False:
+        until = f" until {held.strftime('%Y-%m-%dT%H:%M:%SZ')}" if held else ""
+        if as_json:
+            _emit_json({"ran": True, "holder": None, "counts": {}, "windows": [], "remaining": {},
+                        "waiting": {}, "idle_until": held.isoformat() if held else None})
+        else:
+            click.echo(f"{now.strftime('%Y-%m-%dT%H:%M:%SZ')} tick: nothing due{until}")
+        return
+    from runner import api
+
+    result = api.tick(obj.root, now, obj.ledger, workers)
+    if as_json:
+        _emit_json({"ran": result.ran, "holder": result.holder, "counts": result.counts(),
+                    "windows": [o.as_dict() for o in result.outcomes], "remaining": result.held_back,
+                    "waiting": result.waiting})
+    else:
+        click.echo(_tick_line(result, _now(at)))
+        for o in result.outcomes:
+            if o.status in ("done", "failed"):
+                click.echo("  " + _outcome_line(o))
+    if result.ran and any(o.status == "failed" for o in result.outcomes):
+        sys.exit(1)
+
+
+def _tick_line(result: Any, now: datetime) -> str:
+    stamp = now.strftime("%Y-%m-%dT%H:%M:%SZ")
+    if not result.ran:
+        return f"{stamp} another tick is running ({result.holder or 'unknown'}); nothing done"
+    counts = result.counts()
+    parts = [f"{k} {v}" for k, v in sorted(counts.items())] or ["nothing due"]
+    line = f"{stamp} tick: " + ", ".join(parts)
+    if result.held_back:
+        line += "; held back by max_catch_up: " + ", ".join(f"{j} {n}" for j, n in result.held_back.items())
+    if result.waiting:
+        line += "; waiting: " + ", ".join(f"{j} {n}" for j, n in result.waiting.items())
+    return line
+
+
+@cli.command()
+@click.option("--every", "every", default="60s", show_default=True, metavar="DURATION",
+              help="Time between ticks (30s, 1m, 5m, ...).")
+@workers_option
+@click.pass_obj
+def serve(obj: Context, every: str, workers: int | None) -> None:
+    """Tick forever (for a service manager), one log line per tick.
+
+    SIGTERM or SIGINT stops it cleanly between windows: a window being run is
+    finished first, nothing new starts.
+    """
+    import signal
+    import time
+
+    from runner import api
+    from runner.errors import UsageError
+    from runner.timeutil import BadValue, parse_duration
+
+    try:
+        interval = parse_duration(every).total_seconds()
+    except BadValue as exc:
+        raise UsageError(f"--every: {exc}") from None
+    if interval <= 0:
+        raise UsageError("--every must be positive")
+    stop = {"flag": False}
+
+    def handler(signum: int, _frame: Any) -> None:
+        stop["flag"] = True
+        click.echo(f"{datetime.now(UTC).strftime('%Y-%m-%dT%H:%M:%SZ')} stopping after the current window "
+                   f"(signal {signum})", err=True)
+
+    signal.signal(signal.SIGTERM, handler)
+    signal.signal(signal.SIGINT, handler)
+    ws = api.workspace(obj.root)
+    while not stop["flag"]:
+        started = time.monotonic()
+        now = datetime.now(UTC)
+        try:
+            result = api.tick(obj.root, now, obj.ledger, workers, should_stop=lambda: stop["flag"], ws=ws)
+            click.echo(_tick_line(result, now))
+        except Exception as exc:  # noqa: BLE001 - a service keeps going; the error is logged
+            click.echo(f"{now.strftime('%Y-%m-%dT%H:%M:%SZ')} tick failed: {exc}", err=True)
+        while not stop["flag"] and time.monotonic() - started < interval:
+            time.sleep(min(0.5, interval))
+        if not stop["flag"]:
+            try:
+                ws = api.workspace(obj.root)
+            except Exception as exc:  # noqa: BLE001 - keep the last valid jobs
+                click.echo(f"job files invalid, keeping the previous ones: {str(exc).splitlines()[0]}", err=True)
+    click.echo(f"{datetime.now(UTC).strftime('%Y-%m-%dT%H:%M:%SZ')} stopped")
+
+
+@cli.command()
+@click.argument("jobs", nargs=-1)
+@at_option
+@json_option
+@click.pass_obj
+def stale(obj: Context, jobs: tuple[str, ...], at: str | None, as_json: bool) -> None:
+    """List every done window whose output is out of date, and which part changed.
+
+    Parts: spec (the job file), code (SQL or python module), input (files added,
+    removed or changed), upstream (a producer's output changed), output (changed
+    outside weir, found by weir verify). Consumers of a changed job are listed
+    as stale by upstream, pending until the producer has re-run.
+    """
+    from runner import api
+
+    result = api.stale(obj.root, list(jobs), _now(at), obj.ledger)
+    if as_json:
+        _emit_json(result)
+        return
+    from rich.table import Table
+
+    table = Table(box=None, pad_edge=False, show_edge=False)
+    for col in ("job", "from", "to", "windows", "changed"):
+        table.add_column(col, justify="right" if col == "windows" else "left")
+    for r in result["ranges"]:
+        why = r["reasons"] + (" (pending upstream)" if r["pending"] else "")
+        table.add_row(r["job"], r["first"], r["last_end"], str(r["count"]), why)
+    console = _console()
+    if result["ranges"]:
+        console.print(table)
+    console.print(f"{len(result['windows'])} stale window(s)" +
+                  ("; weir why JOB WINDOW shows what changed" if result["windows"] else ""))
+
+
+@cli.command()
+@click.argument("job")
+@click.argument("window_id", metavar="WINDOW")
+@at_option
+@json_option
+@click.pass_obj
+def why(obj: Context, job: str, window_id: str, at: str | None, as_json: bool) -> None:
+    """Explain one window: its state and, when stale, exactly what changed since it ran."""
+    from runner import api
+
+    info = api.why(obj.root, job, window_id, _now(at), obj.ledger)
+    if as_json:
+        _emit_json(info)
+        return
+    console = _console()
+    console.print(f"[bold]{info['job']} {info['window']}[/] .. {info['end']} ({info['length']})")
+    console.print(f"state: {info['state']}" + (f"  {info['reason']}" if info.get("reason") else ""))
+    for kind, change in (info.get("changes") or {}).items():
+        console.print(f"[bold]{kind} changed[/]")
+        if kind == "spec":
+            for c in change:
+                console.print(f"  {c['field']}: {c['was']!r} -> {c['now']!r}")
+        elif kind == "code":
+            console.print(change.rstrip("\n"), markup=False)
+        elif kind == "input":
+            for c in change:
+                console.print(f"  {c['change']:<8} {c['input']}: {c['path']}  {c['was'] or ''} -> {c['now'] or ''}")
+        elif kind == "upstream":
+            for c in change[:20]:
+                console.print(f"  {c['job']} {c['window']}: digest {str(c['was'])[:12]} -> {str(c['now'])[:12]}")
+            if len(change) > 20:
+                console.print(f"  ... {len(change) - 20} more producer windows")
+        else:
+            console.print(f"  {change}")
+    if info.get("waiting"):
+        console.print(f"waiting: {info['waiting']}")
+    ing = info.get("ingestion")
+    if ing:
+        late = " LATE" if ing["late"] else ""
+        console.print(f"newest input {ing['newest_input']}, {ing['after_window_end']} after the window ended{late}")
+    run = info.get("last_run")
+    if run:
+        secs = f"{run['seconds']:.2f}s" if run["seconds"] is not None else "-"
+        console.print(f"last run #{run['id']} {run['status']} at {run['started_at']} in {secs}: read "
+                      f"{_n(run['rows_read']) or '-'}, dropped {_n(run['rows_dropped'])}, rejected "
+                      f"{_n(run['rows_rejected'])}, written {_n(run['rows_written'])}; fingerprint "
+                      f"{(run['fingerprint'] or '')[:12]}; code {run['code_version'] or '-'}")
+        if run["error"]:
+            console.print(f"error: {run['error']}", markup=False)
+
+
+@cli.command()
+@at_option
+@workers_option
+@json_option
+@click.pass_obj
+def impact(obj: Context, at: str | None, workers: int | None, as_json: bool) -> None:
+    """Before deploying a change: how many windows the job files as they are now would recompute.
+
+    Counts done windows per job by the part that changed, and estimates the time
+    from recorded run durations (median per job x windows / workers).
+    """
+    from runner import api
+
+    rows = api.impact(obj.root, _now(at), obj.ledger, workers)
+    if as_json:
+        _emit_json(rows)
+        return
+    from rich.table import Table
+
+    table = Table(box=None, pad_edge=False, show_edge=False)
+    for col in ("job", "windows", "by reason", "estimate"):
+        table.add_column(col)
+    total = 0.0
+    for r in rows:
+        reasons = ", ".join(f"{k} {v}" for k, v in sorted(r["by_reason"].items())) or "-"
+        est = r["estimated_seconds"]
+        total += est or 0
+        table.add_row(r["job"], str(r["windows"]), reasons, f"{est:.1f}s" if est is not None else "-")
+    console = _console()
+    console.print(table)
+    console.print(f"{sum(r['windows'] for r in rows)} window(s) would be recomputed, about {total:.1f}s")
+
+
+@cli.command()
+@click.argument("jobs", nargs=-1)
+@json_option
+@click.pass_obj
+def verify(obj: Context, jobs: tuple[str, ...], as_json: bool) -> None:
+    """Re-read every done window's output and compare it with the ledger's checksum.
+
+    An output that is missing or was changed outside weir is reported and its
+    window becomes stale (by output), so the next tick or backfill restores it.
+    Exit status 1 when a problem was found.
+    """
+    from runner import api
+
+    problems = api.verify(obj.root, list(jobs), obj.ledger)
+    if as_json:
+        _emit_json(problems)
+    else:
+        for p in problems:
+            click.echo(f"{p['problem']:<8} {p['job']} {p['window']}  {p['output']}")
+        click.echo(f"{len(problems)} output problem(s)" + (" (now stale by output)" if problems else ""))
+    if problems:
+        sys.exit(1)
+
+
 def main(argv: list[str] | None = None) -> None:
     """Entry point: run the CLI, turning user errors into one line and an exit status."""
     from runner.errors import SpecProblems, WeirError

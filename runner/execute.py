@@ -208,6 +208,25 @@ def prepare(ctx: RunContext, job: str, window: Window, database_entries: list[di
 # ---------------------------------------------------------------- running
 
 
+def is_current(ctx: RunContext, job: str, window: Window) -> bool:
+    """True when the window is done with the fingerprint it would have now (nothing to run).
+
+    A cheap pre-check without a claim; `run_window` checks again under its claim.
+    """
+    from runner.errors import WeirError
+
+    if any(isinstance(s, DatabaseInput) for s in ctx.ws.jobs[job].spec.inputs.values()):
+        return False  # the rows must be read to know
+    current = ctx.ledger.state_row(job, window.key)
+    if current is None or current["state"] != "done" or current.get("output_state"):
+        return False
+    try:
+        prep = prepare(ctx, job, window)
+    except (WeirError, OSError):
+        return False
+    return prep.waiting is None and prep.fingerprint == current["fingerprint"]
+
+
 def run_window(ctx: RunContext, job: str, window: Window, force: bool = False) -> Outcome:
     """Run one window unless it is current, claimed elsewhere or waiting; retry on failure."""
     assert ctx.claims is not None
@@ -352,7 +371,8 @@ def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: 
     state = {
         "window_end": Window(window.end, window.end, window.tz).key, "window_id": window.id, "state": "done",
         "fingerprint": prep.fingerprint, **{f"fp_{c}": prep.parts[c].hash for c in fp.COMPONENTS},
-        "output": location, "output_digest": digest, "ingested_at": _ingested(prep), "seconds": finished["seconds"],
+        "output": location, "output_digest": digest, "output_checksum": checksum,
+        "ingested_at": _ingested(prep), "seconds": finished["seconds"],
         "output_state": None,
     }
     ctx.ledger.finish_run(run_id, job, window.key, ctx.owner, finished, state)

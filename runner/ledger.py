@@ -102,6 +102,8 @@ windows = sa.Table(
     sa.Column("fp_upstream", sa.String(64)),
     sa.Column("output", sa.Text),
     sa.Column("output_digest", sa.String(64)),
+    sa.Column("output_checksum", sa.String(64)),
+    sa.Column("last_fingerprint", sa.String(64)),
     sa.Column("good_run_id", sa.Integer),
     sa.Column("failures", sa.Integer, nullable=False, default=0),
     sa.Column("ingested_at", sa.String(32)),
@@ -172,6 +174,7 @@ class Ledger:
             return
         if self._sqlite_path is not None:
             self._sqlite_path.parent.mkdir(parents=True, exist_ok=True)
+            connect_args["timeout"] = float(os.environ.get("WEIR_LEDGER_TIMEOUT", "60"))
         try:
             self.engine = sa.create_engine(url, connect_args=connect_args, future=True)
         except (sa_exc.ArgumentError, sa_exc.NoSuchModuleError, ImportError) as exc:
@@ -194,6 +197,8 @@ class Ledger:
         try:
             with engine.begin() as conn:
                 yield conn
+        except sa_exc.IntegrityError:
+            raise  # a subclass of DatabaseError; `_lease` relies on seeing it to fall back to UPDATE
         except sa_exc.OperationalError as exc:
             raise LedgerError(_explain(self.url, exc)) from None
         except sa_exc.DatabaseError as exc:
@@ -298,6 +303,17 @@ class Ledger:
             res = conn.execute(sa.update(table).where(
                 *where, sa.or_(table.c.expires < now, table.c.owner == owner)
             ).values(owner=owner, expires=now + ttl))
+        if res.rowcount == 1:
+            return True
+        # A holder on this host whose process is gone (killed, crashed) will never renew or
+        # release: take its lease over now rather than making a resumed run wait for expiry.
+        with self._tx(read=True) as conn:
+            row = conn.execute(sa.select(table.c.owner).where(*where)).first()
+        if row is None or not _gone(row[0]):
+            return False
+        with self._tx() as conn:
+            res = conn.execute(sa.update(table).where(*where, table.c.owner == row[0])
+                               .values(owner=owner, expires=now + ttl))
         return res.rowcount == 1
 
     # ------------------------------------------------------------ runs
@@ -327,10 +343,12 @@ class Ledger:
                 windows.c.job == job, windows.c.window_key == key)).mappings().first()
             state = dict(window)
             state.update(job=job, window_key=key, run_id=run_id, finished_at=values["finished_at"])
+            attempted = conn.execute(sa.select(runs.c.fingerprint).where(runs.c.id == run_id)).scalar()
+            state["last_fingerprint"] = attempted
             if state["state"] == "failed" and current is not None:
                 # keep the last good output's identity: consumers and digests still refer to it
-                for col in ("output", "output_digest", "good_run_id", "fingerprint", "fp_spec", "fp_code",
-                            "fp_input", "fp_upstream", "ingested_at"):
+                for col in ("output", "output_digest", "output_checksum", "good_run_id", "fingerprint",
+                            "fp_spec", "fp_code", "fp_input", "fp_upstream", "ingested_at"):
                     if state.get(col) is None:
                         state[col] = current[col]
                 state["failures"] = (current["failures"] or 0) + 1
@@ -422,6 +440,20 @@ class Ledger:
         return pl.DataFrame([tuple(r) for r in rows], schema=schema, orient="row")
 
 
+def _gone(owner: str) -> bool:
+    """True when `owner` (host:pid:start, see `owner_id`) is a process of this host that has ended."""
+    parts = owner.rsplit(":", 2)
+    if len(parts) != 3 or parts[0] != socket.gethostname() or not parts[1].isdigit():
+        return False
+    try:
+        os.kill(int(parts[1]), 0)
+    except ProcessLookupError:
+        return True
+    except OSError:
+        return False  # it exists (perhaps another user's process)
+    return False
+
+
 def _state_schema() -> dict[str, Any]:
     import polars as pl
 
@@ -433,10 +465,11 @@ def _state_schema() -> dict[str, Any]:
 
 
 def _sqlite_pragmas(dbapi_conn: Any, _record: Any) -> None:
+    timeout_ms = int(float(os.environ.get("WEIR_LEDGER_TIMEOUT", "60")) * 1000)
     cur = dbapi_conn.cursor()
+    cur.execute(f"PRAGMA busy_timeout={timeout_ms}")
     cur.execute("PRAGMA journal_mode=WAL")
     cur.execute("PRAGMA synchronous=NORMAL")
-    cur.execute("PRAGMA busy_timeout=60000")
     cur.close()
 
 
@@ -455,3 +488,47 @@ def _explain(url: str, exc: Exception) -> str:
     if "not a database" in text or "malformed" in text:
         return f"the ledger {url} is not a readable database ({text}); restore it from a backup or move it away"
     return f"ledger {url}: {text}"
+
+
+class HeldLock:
+    """A workspace-wide lock held for a block, renewed from a background thread.
+
+    `acquired` is False when another live owner holds it; the block then runs
+    without it (the caller decides what to do).
+    """
+
+    def __init__(self, ledger: Ledger, name: str, owner: str, ttl: float = 300.0):
+        import threading
+
+        self.ledger, self.name, self.owner, self.ttl = ledger, name, owner, ttl
+        self.acquired = False
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+
+    def __enter__(self) -> HeldLock:
+        import threading
+
+        self.acquired = self.ledger.lock(self.name, self.owner, self.ttl)
+        if self.acquired:
+            self._thread = threading.Thread(target=self._renew, name="weir-lock", daemon=True)
+            self._thread.start()
+        return self
+
+    def _renew(self) -> None:
+        import contextlib
+
+        while not self._stop.wait(self.ttl / 3):
+            with contextlib.suppress(Exception):
+                self.ledger.renew_lock(self.name, self.owner, self.ttl)
+
+    def __exit__(self, *exc: object) -> None:
+        self._stop.set()
+        if self.acquired:
+            self.ledger.unlock(self.name, self.owner)
+
+    def holder(self) -> str | None:
+        if self.ledger.engine is None:
+            return None
+        with self.ledger._tx(read=True) as conn:
+            row = conn.execute(sa.select(locks.c.owner).where(locks.c.name == self.name)).first()
+        return row[0] if row else None

@@ -6,13 +6,20 @@ nothing here touches the disk or reads the time.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
-from datetime import datetime, timedelta
+from datetime import UTC, datetime, timedelta
+from typing import TYPE_CHECKING, Any
 
+from runner import fingerprint as fp
 from runner.graph import upstream_windows
-from runner.spec import JobInput
-from runner.windows import Window
+from runner.spec import FileInput, JobInput
+from runner.timeutil import format_instant, from_us, parse_utc, to_us
+from runner.windows import Cadence, Window
 from runner.workspace import Workspace
+
+if TYPE_CHECKING:
+    import polars as pl
 
 
 @dataclass
@@ -109,3 +116,426 @@ def backfill(ws: Workspace, jobs: list[str], lo: datetime | None, hi: datetime |
                     deps.add(i)
         task.deps = sorted(deps)
     return BackfillPlan(tasks, not_due)
+
+
+# ---------------------------------------------------------------- assessing window states
+
+STATES = ("done", "stale", "failed", "running", "waiting", "missing")
+
+
+@dataclass
+class Snapshot:
+    """The ledger, read once: window state rows per job and the live claims."""
+
+    states: dict[str, Any]
+    claims: set[tuple[str, str]] = field(default_factory=set)
+
+
+@dataclass(frozen=True)
+class Probe:
+    """What the file system says of one window's inputs now."""
+
+    input_hash: str | None
+    newest_mtime_ns: int | None
+    waiting: str | None
+
+
+InputProbe = Callable[[str, Window], Probe]
+
+
+def _pairs(consumer: pl.DataFrame, ccad: Cadence, pcad: Cadence, source: JobInput, same_job: bool
+           ) -> pl.DataFrame:
+    """(window_key, producer_key, producer_end_us) for every producer window each consumer window reads."""
+    import polars as pl
+
+    starts, ends = consumer["start_us"], consumer["end_us"]
+    if source.lag is not None:
+        lo, hi = starts.shift(source.lag), ends.shift(source.lag)
+    elif source.lookback is not None:
+        back = int(source.lookback.total_seconds() * 1_000_000)
+        lo, hi = starts - back, (starts if same_job else ends)
+    else:
+        lo, hi = starts, ends
+    pstart = to_us(pcad.start)
+    frame = pl.DataFrame({"window_key": consumer["window_key"], "lo": lo, "hi": hi}).with_columns(
+        pl.max_horizontal(pl.col("lo"), pl.lit(pstart)).alias("lo"))
+    frame = frame.filter(pl.col("lo").is_not_null() & (pl.col("hi") > pl.col("lo")))
+    empty = pl.DataFrame(schema={"window_key": pl.String, "producer_key": pl.String, "producer_end_us": pl.Int64})
+    if frame.height == 0:
+        return empty
+    first = pcad.window_at(from_us(int(frame["lo"].min())))
+    pspan = pcad.span(first.start if first is not None else pcad.start, from_us(int(frame["hi"].max())))
+    if len(pspan) == 0:
+        return empty
+    pends, pstarts = pspan.ends_us, pspan.starts_us
+    frame = frame.with_columns(
+        pends.search_sorted(frame["lo"], side="right").alias("i0"),
+        pstarts.search_sorted(frame["hi"], side="left").alias("i1"),
+    ).filter(pl.col("i1") > pl.col("i0"))
+    keys = pl.DataFrame({"idx": pl.int_range(0, len(pspan), eager=True, dtype=pl.Int64),
+                         "producer_key": pspan.keys(), "producer_end_us": pends})
+    return (frame.select("window_key", pl.int_ranges("i0", "i1", dtype=pl.Int64).alias("idx"))
+            .explode("idx").join(keys, on="idx", how="inner").select("window_key", "producer_key", "producer_end_us"))
+
+
+def _upstream(ws: Workspace, job: str, frame: pl.DataFrame, snapshot: Snapshot,
+              assessed: dict[str, pl.DataFrame]) -> pl.DataFrame:
+    """Per window: current upstream hash, whether all producers are done, and whether all are current."""
+    import polars as pl
+
+    ccad = ws.cadence(job)
+    parts = []
+    for name, source in ws.jobs[job].spec.inputs.items():
+        if not isinstance(source, JobInput):
+            continue
+        same = source.job == job
+        pairs = _pairs(frame, ccad, ws.cadence(source.job), source, same)
+        recorded = snapshot.states.get(source.job)
+        rec = (recorded.select(pl.col("window_key").alias("producer_key"), pl.col("state").alias("p_state"),
+                               pl.col("output_digest").alias("p_digest"))
+               if recorded is not None and recorded.height else
+               pl.DataFrame(schema={"producer_key": pl.String, "p_state": pl.String, "p_digest": pl.String}))
+        pairs = pairs.join(rec, on="producer_key", how="left")
+        if same:
+            current = frame.select(pl.col("window_key").alias("producer_key"),
+                                   (pl.col("state") == "done").alias("p_current"))
+        else:
+            a = assessed.get(source.job)
+            current = (a.select(pl.col("window_key").alias("producer_key"),
+                                ((pl.col("state") == "done") & ~pl.col("pending")).alias("p_current"))
+                       if a is not None else pl.DataFrame(schema={"producer_key": pl.String, "p_current": pl.Boolean}))
+        pairs = pairs.join(current, on="producer_key", how="left").with_columns(
+            pl.lit(name).alias("input"), pl.lit(source.job).alias("job"),
+            pl.col("p_current").fill_null(False))
+        parts.append(pairs)
+    if not parts:
+        return frame.select("window_key").with_columns(
+            pl.lit(fp.upstream_part([]).hash).alias("up_hash"), pl.lit(True).alias("up_ready"),
+            pl.lit(True).alias("up_current"), pl.lit(None, dtype=pl.String).alias("up_waiting"))
+    pairs = pl.concat(parts)
+    # the exact canonical JSON that fingerprint.upstream_part hashes
+    digest_json = pl.when(pl.col("p_digest").is_null()).then(pl.lit("null")).otherwise(
+        pl.lit('"') + pl.col("p_digest") + pl.lit('"'))
+    pairs = pairs.with_columns((
+        pl.lit('{"digest":') + digest_json + pl.lit(',"input":"') + pl.col("input") + pl.lit('","job":"')
+        + pl.col("job") + pl.lit('","window":"') + pl.col("producer_key") + pl.lit('"}')).alias("entry"))
+    pairs = pairs.sort("window_key", "input", "job", "producer_key")
+    grouped = pairs.group_by("window_key", maintain_order=True).agg(
+        pl.col("entry").str.join(",").alias("text"),
+        (pl.col("p_state") == "done").fill_null(False).all().alias("up_ready"),
+        pl.col("p_current").all().alias("up_current"),
+        pl.col("producer_key").filter((pl.col("p_state") != "done") | pl.col("p_state").is_null()).first()
+        .alias("first_missing"),
+        pl.col("job").filter((pl.col("p_state") != "done") | pl.col("p_state").is_null()).first()
+        .alias("first_missing_job"),
+        (pl.col("producer_key").filter((pl.col("p_state") != "done") | pl.col("p_state").is_null()).len())
+        .alias("missing_count"),
+        pl.len().alias("count"),
+    )
+    texts = grouped["text"].to_list()
+    hashes = [fp.digest("[" + t + "]") for t in texts]
+    grouped = grouped.with_columns(pl.Series("up_hash", hashes, dtype=pl.String))
+    out = frame.select("window_key").join(grouped, on="window_key", how="left").with_columns(
+        pl.col("up_hash").fill_null(fp.upstream_part([]).hash),
+        pl.col("up_ready").fill_null(True),
+        pl.col("up_current").fill_null(True),
+    )
+    waiting = [
+        None if ready or key is None else
+        f"waiting for {'itself' if pj == job else pj}: {n} of {c} producer window(s) not done "
+        f"(first {format_instant(parse_utc(key), ws.cadence(pj).tz)})"
+        for ready, key, pj, n, c in zip(out["up_ready"].to_list(), out["first_missing"].to_list(),
+                                        out["first_missing_job"].to_list(), out["missing_count"].to_list(),
+                                        out["count"].to_list(), strict=True)
+    ]
+    return out.select("window_key", "up_hash", "up_ready", "up_current",
+                      pl.Series("up_waiting", waiting, dtype=pl.String))
+
+
+def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, now_parts: tuple[str, str],
+               probe: InputProbe | None, recheck_all: bool, assessed: dict[str, pl.DataFrame]) -> pl.DataFrame:
+    """Every due window of `job` with its state, reasons and flags (one row per window).
+
+    Columns: window, window_key, start_us, end_us, state, reasons (list), pending,
+    due (needs running now), late, failures, seconds, ingested_at, reason (text).
+    `probe` reads inputs for windows inside the job's recheck horizon (every window
+    with `recheck_all`) and for windows that have never run; None skips input checks.
+    """
+    import polars as pl
+
+    spec = ws.jobs[job].spec
+    cad = ws.cadence(job)
+    span = cad.due(at)
+    frame = span.frame()
+    states = snapshot.states.get(job)
+    if states is None or states.height == 0:
+        from runner.ledger import _state_schema
+
+        states = pl.DataFrame(schema=_state_schema())
+    frame = frame.join(states.drop("job", "window_id", "window_end", strict=False), on="window_key", how="left")
+    frame = frame.with_columns(pl.col("failures").fill_null(0))
+    spec_now, code_now = now_parts
+    up = _upstream(ws, job, frame, snapshot, assessed)
+    frame = frame.join(up, on="window_key", how="left")
+    # inputs: probed where cheap enough to matter
+    horizon = to_us(at - spec.recheck)
+    has_files = any(isinstance(s, FileInput) for s in spec.inputs.values())
+    need = (pl.lit(True) if recheck_all else
+            (pl.col("end_us") >= horizon) | pl.col("state").is_null() | (pl.col("state") == "failed"))
+    probed_hash: list[str | None] = [None] * frame.height
+    probed_wait: list[str | None] = [None] * frame.height
+    newest: list[int | None] = [None] * frame.height
+    if probe is not None and has_files:
+        mask = frame.select(need.alias("n"))["n"].to_list()
+        starts = frame["start_us"].to_list()
+        ends = frame["end_us"].to_list()
+        for i, wanted in enumerate(mask):
+            if wanted:
+                result = probe(job, Window(from_us(starts[i]), from_us(ends[i]), cad.tz))
+                probed_hash[i], newest[i], probed_wait[i] = (
+                    result.input_hash, result.newest_mtime_ns, result.waiting)
+    frame = frame.with_columns(
+        pl.Series("in_hash", probed_hash, dtype=pl.String),
+        pl.Series("in_waiting", probed_wait, dtype=pl.String),
+        pl.Series("in_newest", newest, dtype=pl.Int64),
+        (pl.col("window_key").is_in(pl.Series([k for j, k in snapshot.claims if j == job], dtype=pl.String)))
+        .alias("running"),
+    )
+    done = pl.col("state") == "done"
+    changed = [
+        pl.when(done & (pl.col("fp_spec") != spec_now)).then(pl.lit("spec")),
+        pl.when(done & (pl.col("fp_code") != code_now)).then(pl.lit("code")),
+        pl.when(done & pl.col("in_hash").is_not_null() & (pl.col("fp_input") != pl.col("in_hash")))
+        .then(pl.lit("input")),
+        pl.when(done & (pl.col("fp_upstream") != pl.col("up_hash")) & pl.col("up_ready")).then(pl.lit("upstream")),
+        pl.when(done & pl.col("output_state").is_not_null()).then(pl.lit("output")),
+    ]
+    frame = frame.with_columns(pl.concat_list(changed).list.drop_nulls().alias("reasons"))
+    self_chain = any(isinstance(s, JobInput) and s.job == job for s in spec.inputs.values())
+    frame = frame.with_columns((~pl.col("up_current")).alias("pending"))
+    if self_chain:
+        not_current = (pl.col("state") != "done") | pl.col("state").is_null() | (pl.col("reasons").list.len() > 0)
+        frame = frame.with_columns(
+            (pl.col("pending") | not_current.cast(pl.Int8).cum_max().shift(1, fill_value=0).cast(pl.Boolean))
+            .alias("pending"))
+    # a done window whose producers are not current is stale by upstream, pending their re-run
+    frame = frame.with_columns(
+        pl.when(done & pl.col("pending") & ~pl.col("reasons").list.contains("upstream"))
+        .then(pl.concat_list("reasons", pl.lit(["upstream"])))
+        .otherwise(pl.col("reasons")).alias("reasons"))
+    # failed windows: retries left, backoff elapsed, or changed since the failure
+    retries = spec.retries
+    delay_s = spec.retry_delay.total_seconds()
+    at_text = at.strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+    frame = frame.with_columns(
+        ((pl.col("failures") - 1).clip(0, 30)).alias("_backoff_power"),
+    )
+    backoff_until = [
+        None if f is None or not fa else
+        (parse_run_time(f) + timedelta(seconds=delay_s * (2 ** p))).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+        for f, fa, p in zip(frame["finished_at"].to_list(), frame["failures"].to_list(),
+                            frame["_backoff_power"].to_list(), strict=True)
+    ]
+    frame = frame.with_columns(pl.Series("retry_at", backoff_until, dtype=pl.String))
+    late_after = spec.late_after
+    if late_after is not None:
+        late_us = int(late_after.total_seconds() * 1_000_000)
+        ingested_us = pl.col("ingested_at").str.to_datetime("%Y-%m-%dT%H:%M:%S%.fZ", time_zone="UTC",
+                                                            strict=False).dt.epoch("us")
+        newest_us = pl.col("in_newest") // 1000
+        frame = frame.with_columns(
+            ((pl.coalesce(newest_us, ingested_us) - pl.col("end_us")) > late_us).fill_null(False).alias("late"))
+    else:
+        frame = frame.with_columns(pl.lit(False).alias("late"))
+    state = (
+        pl.when(pl.col("running")).then(pl.lit("running"))
+        .when(pl.col("state").is_null() & (pl.col("in_waiting").is_not_null() | ~pl.col("up_ready")))
+        .then(pl.lit("waiting"))
+        .when(pl.col("state").is_null()).then(pl.lit("missing"))
+        .when(pl.col("state") == "failed").then(pl.lit("failed"))
+        .when(pl.col("reasons").list.len() > 0).then(pl.lit("stale"))
+        .otherwise(pl.lit("done"))
+    )
+    frame = frame.with_columns(state.alias("state_now"))
+    retry_left = pl.col("failures") <= retries
+    backoff_ok = pl.col("retry_at").is_null() | (pl.col("retry_at") <= pl.lit(at_text))
+    failed_due = (pl.col("state_now") == "failed") & pl.col("in_waiting").is_null() & pl.col("up_ready") & (
+        retry_left & backoff_ok)
+    due = (pl.col("state_now") == "missing") | failed_due | (
+        (pl.col("state_now") == "stale") & pl.col("up_ready") & ~pl.col("pending"))
+    frame = frame.with_columns(due.alias("due"))
+    reason = (
+        pl.when(pl.col("state_now") == "running").then(pl.lit("running in another process"))
+        .when(pl.col("state_now") == "waiting").then(pl.coalesce("in_waiting", "up_waiting"))
+        .when(pl.col("state_now") == "missing").then(pl.lit("never ran"))
+        .when((pl.col("state_now") == "failed") & pl.col("due"))
+        .then(pl.format("failed {} time(s); retry {} of {}", "failures", "failures", pl.lit(retries)))
+        .when((pl.col("state_now") == "failed") & retry_left & ~backoff_ok)
+        .then(pl.format("failed; next retry after {}", "retry_at"))
+        .when(pl.col("state_now") == "failed")
+        .then(pl.format("failed {} time(s); no retries left (weir backfill retries it)", "failures"))
+        .when(pl.col("state_now") == "stale")
+        .then(pl.lit("stale by ") + pl.col("reasons").list.join(", ")
+              + pl.when(pl.col("pending")).then(pl.lit(" (pending upstream: may stay current once producers re-run)"))
+              .otherwise(pl.lit("")))
+        .otherwise(pl.lit(""))
+    )
+    frame = frame.with_columns(reason.alias("reason"))
+    return frame.select(
+        "window", "window_key", "start_us", "end_us", pl.col("state_now").alias("state"), "reasons", "pending",
+        "due", "late", "failures", "seconds", "ingested_at", "reason", "output", "output_digest", "run_id",
+        "in_newest", pl.when((pl.col("state_now") == "failed") & retry_left).then(pl.col("retry_at"))
+        .alias("retry_at"),
+    )
+
+
+def parse_run_time(text: str) -> datetime:
+    """A ledger run time (`...%fZ`) as an aware datetime."""
+    return datetime.strptime(text, "%Y-%m-%dT%H:%M:%S.%fZ").replace(tzinfo=UTC)
+
+
+def assess(ws: Workspace, at: datetime, snapshot: Snapshot, now_parts: dict[str, tuple[str, str]],
+           probe: InputProbe | None, jobs: list[str] | None = None, recheck_all: bool = False
+           ) -> dict[str, pl.DataFrame]:
+    """Assess every due window of `jobs` (and, for the upstream cascade, their producers)."""
+    from runner import graph as graphs
+
+    wanted = ws.select(jobs or [])
+    needed: set[str] = set(wanted)
+    for name in wanted:
+        needed |= graphs.nx.ancestors(ws.graph, name)
+    assessed: dict[str, pl.DataFrame] = {}
+    for name in ws.order:
+        if name in needed:
+            assessed[name] = assess_job(ws, name, at, snapshot, now_parts[name], probe, recheck_all, assessed)
+    return {n: assessed[n] for n in ws.order if n in set(wanted)}
+
+
+@dataclass
+class PlanItem:
+    job: str
+    window: Window
+    state: str
+    reason: str
+    late: bool = False
+
+
+@dataclass
+class JobPlan:
+    job: str
+    due: list[PlanItem]
+    waiting: list[PlanItem]
+    counts: dict[str, int]
+    late: int
+    held_back: int = 0
+
+
+def job_plans(ws: Workspace, assessed: dict[str, pl.DataFrame], cap: bool = False) -> list[JobPlan]:
+    """Per job (dependency order): due windows (oldest first, capped by max_catch_up when `cap`), waiting ones."""
+    import polars as pl
+
+    plans = []
+    for job, frame in assessed.items():
+        cad = ws.cadence(job)
+        counts = {s: 0 for s in STATES}
+        for row in frame.group_by("state").len().iter_rows():
+            counts[row[0]] = row[1]
+        due_rows = frame.filter(pl.col("due")).sort("start_us")
+        held = 0
+        limit = ws.jobs[job].spec.max_catch_up
+        if cap and limit is not None and due_rows.height > limit:
+            held = due_rows.height - limit
+            due_rows = due_rows.head(limit)
+        waiting_rows = frame.filter(pl.col("state") == "waiting").sort("start_us")
+        due = [PlanItem(job, Window(from_us(s), from_us(e), cad.tz), st, r, lt)
+               for s, e, st, r, lt in due_rows.select("start_us", "end_us", "state", "reason", "late").iter_rows()]
+        waiting = [PlanItem(job, Window(from_us(s), from_us(e), cad.tz), "waiting", r, lt)
+                   for s, e, r, lt in waiting_rows.select("start_us", "end_us", "reason", "late").iter_rows()]
+        plans.append(JobPlan(job, due, waiting, counts, int(frame["late"].sum()), held))
+    return plans
+
+
+def tasks_for(ws: Workspace, items: list[PlanItem]) -> list[Task]:
+    """Tasks (with dependencies among themselves) for planned windows, in dependency order."""
+    tasks: list[Task] = []
+    index: dict[tuple[str, str], int] = {}
+    for item in items:
+        index[(item.job, item.window.key)] = len(tasks)
+        tasks.append(Task(item.job, item.window, item.reason))
+    for task in tasks:
+        deps = set()
+        for source in ws.jobs[task.job].spec.inputs.values():
+            if isinstance(source, JobInput):
+                for pw in upstream_windows(ws.cadence(task.job), task.window, ws.cadence(source.job), source,
+                                           same_job=source.job == task.job):
+                    i = index.get((source.job, pw.key))
+                    if i is not None:
+                        deps.add(i)
+        task.deps = sorted(deps)
+    return tasks
+
+
+@dataclass
+class StaleRange:
+    job: str
+    first: str
+    last_end: str
+    count: int
+    reasons: str
+    pending: bool
+
+
+def stale_ranges(ws: Workspace, assessed: dict[str, pl.DataFrame]) -> list[StaleRange]:
+    """Consecutive stale windows with the same reasons, grouped for reading."""
+    import polars as pl
+
+    out = []
+    for job, frame in assessed.items():
+        cad = ws.cadence(job)
+        rows = frame.sort("start_us").with_columns(
+            pl.col("reasons").list.join(", ").alias("why"),
+        ).select("start_us", "end_us", "state", "why", "pending").iter_rows()
+        current: list[Any] | None = None
+        for s, e, st, why, pending in rows:
+            if st != "stale":
+                if current:
+                    out.append(_range(job, cad, current))
+                current = None
+                continue
+            if current and current[3] == why and current[4] == pending and current[1] == s:
+                current[1] = e
+                current[2] += 1
+            else:
+                if current:
+                    out.append(_range(job, cad, current))
+                current = [s, e, 1, why, pending]
+        if current:
+            out.append(_range(job, cad, current))
+    return out
+
+
+def _range(job: str, cad: Cadence, item: list[Any]) -> StaleRange:
+    s, e, n, why, pending = item
+    return StaleRange(job, format_instant(from_us(s), cad.tz), format_instant(from_us(e), cad.tz), n, why, pending)
+
+
+def next_change(ws: Workspace, assessed: dict[str, pl.DataFrame], at: datetime) -> datetime | None:
+    """The first instant after `at` at which the clock alone changes the plan.
+
+    That is the next window's end plus settle of any job, or a failed window's
+    next retry; None when neither will ever happen (every job has ended).
+    """
+    import polars as pl
+
+    candidates = []
+    for name in ws.jobs:
+        cad = ws.cadence(name)
+        limit = at - cad.settle
+        current = cad.window_at(limit) if limit >= cad.start else cad.first()
+        if current is not None:
+            candidates.append(current.end + cad.settle)
+    for frame in assessed.values():
+        retry = frame.filter(pl.col("retry_at").is_not_null())["retry_at"].to_list()
+        candidates.extend(parse_run_time(r) for r in retry)
+    later = [c for c in candidates if c > at]
+    return min(later) if later else None

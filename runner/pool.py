@@ -17,7 +17,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from runner.execute import Outcome, RunContext, run_window
+from runner.execute import Outcome, RunContext, is_current, run_window
 from runner.planner import Task
 
 _worker: dict[str, Any] = {}
@@ -34,7 +34,7 @@ def _context(settings: Settings) -> RunContext:
     from runner.ledger import Ledger
     from runner.workspace import load_workspace
 
-    ws = load_workspace(settings.root)
+    ws = load_workspace(settings.root, thorough=False)
     return RunContext(ws=ws, ledger=Ledger(settings.ledger_url))
 
 
@@ -58,14 +58,20 @@ def default_workers() -> int:
     return max(1, os.cpu_count() or 1)
 
 
+POOL_THRESHOLD = 6  # windows to run at once before worker processes are worth starting
+
+
 def run_tasks(tasks: list[Task], settings: Settings, workers: int,
               on_outcome: Callable[[Task, Outcome], None] | None = None,
               should_stop: Callable[[], bool] | None = None,
               context: RunContext | None = None) -> list[Outcome]:
     """Run `tasks` respecting dependencies; return one Outcome per task, in task order.
 
-    `should_stop` is polled between windows: when it says so, nothing new starts
-    and the remaining tasks are reported as `not started`.
+    Windows already current are skipped here without a worker. Worker
+    processes start only when enough windows need running at once; until then
+    (and always with one worker) windows run in this process. `should_stop` is
+    polled between windows: when it says so, nothing new starts and the
+    remaining tasks are reported as `not started`.
     """
     outcomes: list[Outcome | None] = [None] * len(tasks)
     dependants: dict[int, list[int]] = {i: [] for i in range(len(tasks))}
@@ -75,6 +81,7 @@ def run_tasks(tasks: list[Task], settings: Settings, workers: int,
             dependants[d].append(i)
     ready = [i for i, n in remaining.items() if n == 0]
     ready.reverse()
+    ctx = context or _context(settings)
 
     def finish(i: int, outcome: Outcome) -> None:
         outcomes[i] = outcome
@@ -93,56 +100,66 @@ def run_tasks(tasks: list[Task], settings: Settings, workers: int,
     def stopped() -> bool:
         return should_stop is not None and should_stop()
 
-    workers = max(1, min(workers, len(tasks) or 1))
-    if workers == 1:
-        ctx = context or _context(settings)
-        while ready and not stopped():
-            i = ready.pop()
-            if outcomes[i] is not None:
-                continue
-            t = tasks[i]
-            finish(i, run_window(ctx, t.job, t.window, force=settings.force))
-    else:
-        _parallel(tasks, settings, workers, ready, outcomes, finish, stopped)
+    to_run: list[int] = []
+    running: dict[Future[dict[str, Any]], int] = {}
+    pool: ProcessPoolExecutor | None = None
+    saved_env = os.environ.get("POLARS_MAX_THREADS")
+    try:
+        while (ready or to_run or running) and not (stopped() and not running):
+            while ready:
+                i = ready.pop()
+                if outcomes[i] is not None:
+                    continue
+                t = tasks[i]
+                if not settings.force and is_current(ctx, t.job, t.window):
+                    finish(i, Outcome(t.job, t.window.id, "skipped", "current: already done with this fingerprint"))
+                else:
+                    to_run.append(i)
+            if stopped():
+                to_run.clear()
+                if not running:
+                    break
+            if pool is None and workers > 1 and len(to_run) >= POOL_THRESHOLD:
+                pool = _start_pool(settings, workers)
+            if pool is not None:
+                while to_run and len(running) < workers * 2:
+                    i = to_run.pop(0)
+                    running[pool.submit(_run_in_worker, tasks[i].job, tasks[i].window.key)] = i
+                if running:
+                    done, _ = wait(running, return_when=FIRST_COMPLETED)
+                    for fut in done:
+                        i = running.pop(fut)
+                        finish(i, _result(fut, tasks[i]))
+            elif to_run:
+                i = to_run.pop(0)
+                t = tasks[i]
+                finish(i, run_window(ctx, t.job, t.window, force=settings.force))
+    except BaseException:
+        if pool is not None:
+            pool.shutdown(wait=False, cancel_futures=True)
+            pool = None
+        raise
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True)
+        if saved_env is None:
+            os.environ.pop("POLARS_MAX_THREADS", None)
+        else:
+            os.environ["POLARS_MAX_THREADS"] = saved_env
     return [o or Outcome(t.job, t.window.id, "not started", "stopped before it started")
             for t, o in zip(tasks, outcomes, strict=True)]
 
 
-def _parallel(tasks: list[Task], settings: Settings, workers: int, ready: list[int],
-              outcomes: list[Outcome | None], finish: Callable[[int, Outcome], None],
-              stopped: Callable[[], bool]) -> None:
+def _start_pool(settings: Settings, workers: int) -> ProcessPoolExecutor:
     cores = os.cpu_count() or 1
-    previous = os.environ.get("POLARS_MAX_THREADS")
     os.environ["POLARS_MAX_THREADS"] = str(max(1, cores // workers))
-    ctx = multiprocessing.get_context("spawn")
-    running: dict[Future[dict[str, Any]], int] = {}
+    return ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"),
+                               initializer=_init_worker, initargs=(settings,))
+
+
+def _result(fut: Future[dict[str, Any]], task: Task) -> Outcome:
     try:
-        with ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_worker,
-                                 initargs=(settings,)) as pool:
-            try:
-                while ready or running:
-                    while ready and len(running) < workers * 2 and not stopped():
-                        i = ready.pop()
-                        if outcomes[i] is not None:
-                            continue
-                        running[pool.submit(_run_in_worker, tasks[i].job, tasks[i].window.key)] = i
-                    if not running:
-                        break
-                    done, _ = wait(running, return_when=FIRST_COMPLETED)
-                    for fut in done:
-                        i = running.pop(fut)
-                        try:
-                            outcome = Outcome(**fut.result())
-                        except Exception as exc:  # noqa: BLE001 - a worker died; report, go on
-                            outcome = Outcome(tasks[i].job, tasks[i].window.id, "failed",
-                                              f"worker failed: {type(exc).__name__}: {exc}",
-                                              error=str(exc))
-                        finish(i, outcome)
-            except BaseException:
-                pool.shutdown(wait=False, cancel_futures=True)
-                raise
-    finally:
-        if previous is None:
-            os.environ.pop("POLARS_MAX_THREADS", None)
-        else:
-            os.environ["POLARS_MAX_THREADS"] = previous
+        return Outcome(**fut.result())
+    except Exception as exc:  # noqa: BLE001 - a worker died; report it and go on
+        return Outcome(task.job, task.window.id, "failed", f"worker failed: {type(exc).__name__}: {exc}",
+                       error=str(exc))

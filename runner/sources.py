@@ -13,16 +13,13 @@
 
 from __future__ import annotations
 
-import glob
 import hashlib
-import os
 import threading
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from runner.errors import WeirError
-from runner.paths import expand
 from runner.spec import Column, DatabaseInput, FileInput
 
 if TYPE_CHECKING:
@@ -52,31 +49,18 @@ class FileSet:
     newest_mtime_ns: int | None
 
 
-def find_files(root: Path, name: str, source: FileInput, window: Window) -> FileSet:
-    """Render, glob and stat the files of one input (hidden files never match)."""
-    patterns = expand(source.files, window)
-    found: set[str] = set()
-    for pattern in patterns:
-        full = pattern if os.path.isabs(pattern) else os.path.join(root, pattern)
-        if glob.has_magic(full):
-            found.update(p for p in glob.glob(full, recursive=True) if os.path.isfile(p))
-        elif os.path.isfile(full):
-            found.add(full)
-    paths = sorted(found)
-    manifest = []
-    newest = None
-    for path in paths:
-        st = os.stat(path)
-        rel = _relative(root, path)
-        entry: dict[str, Any] = {"input": name, "path": rel}
-        if source.fingerprint == "content":
-            entry["sha256"] = file_sha256(path)
-        else:
-            entry["size"] = st.st_size
-            entry["mtime_ns"] = st.st_mtime_ns
-        manifest.append(entry)
-        newest = st.st_mtime_ns if newest is None else max(newest, st.st_mtime_ns)
-    return FileSet(name, patterns, paths, manifest, newest)
+def find_files(root: Path, name: str, source: FileInput, window: Window, index: Any = None) -> FileSet:
+    """Render, glob and stat the files of one input (hidden files never match).
+
+    `index` (a `fileindex.FileIndex` of this input) answers from one listing
+    made beforehand instead of globbing again.
+    """
+    from runner.fileindex import manifest, window_files
+
+    patterns, files = window_files(root, source.files, window, index)
+    entries = manifest(root, name, files, source.fingerprint == "content")
+    newest = max((m for _, _, m in files), default=None)
+    return FileSet(name, patterns, [p for p, _, _ in files], entries, newest)
 
 
 def _relative(root: Path, path: str) -> str:

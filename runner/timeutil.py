@@ -78,7 +78,8 @@ def format_duration(value: timedelta) -> str:
     if minutes:
         time += f"{int(minutes)}M"
     if seconds:
-        time += f"{seconds:g}S"
+        # fixed-point: `:g` would write 1e-06 for a microsecond, which is not ISO 8601
+        time += f"{seconds:.6f}".rstrip("0").rstrip(".") + "S"
     if time:
         out += "T" + time
     if out in ("P", "-P"):

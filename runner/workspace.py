@@ -31,7 +31,16 @@ class Workspace:
     jobs: dict[str, Job]
     graph: nx.DiGraph
     warnings: list[Problem] = field(default_factory=list)
-    output_schemas: dict = field(default_factory=dict)
+    resolved_schemas: dict | None = None
+
+    @property
+    def output_schemas(self) -> dict:
+        """Each job's output schema as resolved from its SQL (None where unknown); computed once."""
+        if self.resolved_schemas is None:
+            schemas: dict = {}
+            _sql_problems(self.jobs, self.graph, schemas)
+            self.resolved_schemas = schemas
+        return self.resolved_schemas
 
     @cached_property
     def order(self) -> list[str]:
@@ -90,11 +99,14 @@ def _display(path: Path) -> str:
     return rel if not rel.startswith(".." + os.sep + "..") else str(path)
 
 
-def load_workspace(root: Path | str = ".", resolve_sql: bool = True) -> Workspace:
+def load_workspace(root: Path | str = ".", resolve_sql: bool = True, thorough: bool = True) -> Workspace:
     """Load and validate every job of the workspace at `root`.
 
     Raises SpecProblems listing every error (job files, graph, SQL) together.
     Warnings (advice that does not stop a run) are kept on the workspace.
+    `thorough=False` skips the checks that only `weir check` needs to be fast
+    about (output path collisions, static SQL resolution): commands that run
+    windows start sooner and would meet those problems as run failures.
     """
     root = Path(root).resolve()
     files = job_files(root)
@@ -115,16 +127,17 @@ def load_workspace(root: Path | str = ".", resolve_sql: bool = True) -> Workspac
     graph = graphs.build_graph(jobs)
     problems.extend(graphs.graph_problems(jobs, graph))
     warnings: list[Problem] = []
-    schemas: dict = {}
-    problems.extend(_output_collisions(jobs))
+    schemas: dict | None = {} if thorough and resolve_sql else None
+    if thorough:
+        problems.extend(_output_collisions(jobs))
     # Every problem of a run is reported together; SQL is resolved in dependency
     # order, which needs a graph without cycles (cycles are reported above).
-    if resolve_sql and nx.is_directed_acyclic_graph(graph):
+    if thorough and resolve_sql and nx.is_directed_acyclic_graph(graph):
         for p in _sql_problems(jobs, graph, schemas):
             (warnings if p.severity == "warning" else problems).append(p)
     if problems:
         raise SpecProblems(problems)
-    return Workspace(root=root, jobs=jobs, graph=graph, warnings=warnings, output_schemas=schemas)
+    return Workspace(root=root, jobs=jobs, graph=graph, warnings=warnings, resolved_schemas=schemas)
 
 
 def _output_collisions(jobs: dict[str, Job]) -> list[Problem]:

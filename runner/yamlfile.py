@@ -119,7 +119,12 @@ def _scalar(node: yaml.ScalarNode) -> Any:
 def _build(node: yaml.Node, path: Path, out: Marked) -> Any:
     out.values[path] = _pos(node)
     if isinstance(node, yaml.ScalarNode):
-        return _scalar(node)
+        try:
+            return _scalar(node)
+        except ValueError:  # an explicit tag the text does not fit, like `!!int abc`
+            raise yaml.constructor.ConstructorError(
+                None, None, f"cannot read {node.value!r} as {node.tag.rsplit(':', 1)[-1]}", node.start_mark
+            ) from None
     if isinstance(node, yaml.SequenceNode):
         return [_build(item, path + (i,), out) for i, item in enumerate(node.value)]
     if isinstance(node, yaml.MappingNode):
@@ -133,6 +138,10 @@ def _build(node: yaml.Node, path: Path, out: Marked) -> Any:
                             result.setdefault(k, v)
                 continue
             key = _build(key_node, path + ("<key>",), out)
+            if isinstance(key, list | dict):  # `? [a, b]`: legal YAML, unusable as a key
+                raise yaml.constructor.ConstructorError(
+                    None, None, "a key must be a plain value, not a list or mapping", key_node.start_mark
+                )
             key = key.yaml_text if isinstance(key, YamlInt | YamlFloat) else key
             key = str(key).lower() if isinstance(key, bool) else key
             key = "null" if key is None else key

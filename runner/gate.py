@@ -1,0 +1,118 @@
+"""The tick gate: lets a `weir tick` with nothing to do finish without planning.
+
+cron starts `weir tick` every minute; most minutes nothing is due. After a
+tick that found nothing to run, the gate file `state/tick-gate.json` records
+the instant at which the plan can next change by the clock alone (the next
+window's end plus settle, the next retry) and a digest of everything else the
+plan depends on: the job files, python step modules, the listing (path, size,
+mtime) of every file input's candidate files, the SQLite ledger file and this
+weir's version. A later tick before that instant whose digest still matches
+has nothing to do either, and stops there without loading the job files, the
+ledger or the data libraries. Any difference at all means a full tick. Only a
+SQLite ledger can be watched this way; other ledgers always take the full path.
+
+This module uses the standard library only, so that the fast path stays fast.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import glob
+import hashlib
+import json
+import os
+import re
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+GATE = Path("state") / "tick-gate.json"
+_PLACEHOLDER = re.compile(r"\{[^{}]*\}")
+
+
+def _stat(path: str) -> tuple[int, int] | None:
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return st.st_size, st.st_mtime_ns
+
+
+def sqlite_file(root: Path, ledger_url: str | None) -> str | None:
+    """The ledger's database file when it is SQLite (default: state/ledger.sqlite)."""
+    if ledger_url is None:
+        return str(root / "state" / "ledger.sqlite")
+    prefix = "sqlite:///"
+    if ledger_url.startswith(prefix) and ":memory:" not in ledger_url:
+        return ledger_url[len(prefix):]
+    return None
+
+
+def observe(root: Path, templates: list[str], modules: list[str], ledger_file: str) -> str:
+    """A digest of everything besides the clock that a plan depends on."""
+    from runner import __version__
+
+    h = hashlib.sha256(__version__.encode())
+    folder = root / "jobs"
+    names = sorted(os.listdir(folder)) if folder.is_dir() else []
+    for name in names:
+        h.update(f"job {name} {_stat(str(folder / name))}\n".encode())
+    for module in modules:
+        h.update(f"module {module} {_stat(module)}\n".encode())
+    for template in templates:
+        wild = _PLACEHOLDER.sub("*", template)
+        full = wild if os.path.isabs(wild) else os.path.join(root, wild)
+        for path in sorted(glob.glob(full, recursive=True)):
+            h.update(f"input {path} {_stat(path)}\n".encode())
+    for suffix in ("", "-wal"):
+        h.update(f"ledger {suffix} {_stat(ledger_file + suffix)}\n".encode())
+    return h.hexdigest()
+
+
+def fresh(root: Path, at: datetime, ledger_url: str | None) -> datetime | None | bool:
+    """When the gate says nothing is due at `at`: the instant it holds until (None: no
+    clock-driven change ahead). False when a full tick is needed."""
+    path = root / GATE
+    try:
+        record = json.loads(path.read_text())
+    except (OSError, ValueError):
+        return False
+    ledger_file = sqlite_file(root, ledger_url)
+    if ledger_file is None or record.get("ledger") != ledger_url or record.get("version") != 1:
+        return False
+    wake = record.get("wake_at")
+    wake_at = datetime.fromisoformat(wake) if wake else None
+    if wake_at is not None and at >= wake_at:
+        return False
+    if observe(root, record.get("templates", []), record.get("modules", []), ledger_file) != record.get("observed"):
+        return False
+    return wake_at
+
+
+def write(root: Path, ledger_url: str | None, templates: list[str], modules: list[str],
+          wake_at: datetime | None) -> None:
+    """Record that nothing is due until `wake_at` given what is observed now."""
+    ledger_file = sqlite_file(root, ledger_url)
+    if ledger_file is None:
+        return
+    record: dict[str, Any] = {
+        "version": 1,
+        "ledger": ledger_url,
+        "wake_at": wake_at.astimezone(UTC).isoformat() if wake_at else None,
+        "templates": templates,
+        "modules": modules,
+        "written_at": datetime.now(UTC).isoformat(),
+    }
+    record["observed"] = observe(root, templates, modules, ledger_file)
+    path = root / GATE
+    tmp = path.with_name(f".{path.name}.{os.getpid()}")
+    try:
+        tmp.write_text(json.dumps(record, indent=1))
+        os.replace(tmp, path)
+    except OSError:
+        pass
+
+
+def clear(root: Path) -> None:
+    with contextlib.suppress(OSError):
+        (root / GATE).unlink()
