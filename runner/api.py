@@ -512,3 +512,87 @@ def _update_gate(ws: Workspace, ledger_url: str | None, assessed, at: datetime) 
         gate.clear(ws.root)
         return
     gate.write(ws.root, ledger_url, templates, sorted(set(modules)), next_change(ws, assessed, at))
+
+
+# ---------------------------------------------------------------- demo and new workspaces
+
+
+def demo(root: Path | str, now: datetime, ledger_url: str | None = None, workers: int | None = None,
+         on_outcome=None, on_plan=None):
+    """Write the demo's landing data (unchanged files are left alone) and backfill every demo job."""
+    from runner import demo as scenario
+
+    root = Path(root).resolve()
+    missing = scenario.missing_jobs(root)
+    if missing:
+        raise UsageError(
+            f"weir demo runs in a workspace holding the example jobs ({', '.join(scenario.DEMO_JOBS)}); "
+            f"{root} lacks {', '.join(missing)}. Run it in the weir repository root, or start a workspace "
+            "of your own with `weir init DIR`.")
+    summary = scenario.write_landing(root)
+    at = scenario.demo_clock(now)
+    result = backfill(root, list(scenario.DEMO_JOBS), None, None, at, ledger_url, workers=workers,
+                      on_outcome=on_outcome, on_plan=on_plan)
+    return summary, result, at
+
+
+INIT_JOB = """\
+# An example job: rides per hour and zone from CSV files that land in state/landing/rides/.
+# Check it with `weir check`, list its windows with `weir windows rides_per_hour`,
+# run what is due with `weir tick` (or a range with `weir backfill rides_per_hour --from ... --to ...`).
+description: Rides per hour and zone.
+window:
+  every: 1h                      # or 15m, 1d, 1w, 1mo; or cron: "0 6 * * 1"
+  start: {start}                 # local time in the timezone below
+  timezone: UTC                  # an IANA name, e.g. Europe/Lisbon
+  settle: 10m                    # a window is due 10 minutes after it ends
+inputs:
+  rides:
+    files: state/landing/rides/{{start:%Y-%m-%d}}/*.csv   # one folder per day
+    time_column: started_at      # keep only rows inside the window
+    schema:                      # checked before anything is summed
+      ride_id: {{type: str, nullable: false}}
+      started_at: datetime
+      zone: str
+      amount: {{type: "decimal(10,2)", min: 0}}
+steps:
+  - sql: |
+      SELECT zone, COUNT(*) AS rides, SUM(amount) AS revenue
+      FROM rides
+      GROUP BY zone
+output:
+  path: state/warehouse/rides_per_hour/{{start:%Y-%m-%d}}/{{start:%H}}.parquet
+  checks:
+    - key: [zone]                # one row per zone, or the window fails and the old output stays
+"""
+
+STATE_README = """\
+# state/
+
+Runtime state of this workspace: the ledger (`ledger.sqlite`), failed windows' logs
+(`logs/`), and data folders. Deleting `ledger.sqlite` makes weir forget every run.
+"""
+
+
+def init(target: Path | str, now: datetime) -> list[str]:
+    """Create a new workspace with jobs/, state/ and one commented example job; return what was written."""
+    root = Path(target)
+    jobs = root / "jobs"
+    example = jobs / "rides_per_hour.yaml"
+    if jobs.is_dir() and any(jobs.iterdir()):
+        raise UsageError(f"{jobs} already has job files; weir init only starts new workspaces")
+    written = []
+    jobs.mkdir(parents=True, exist_ok=True)
+    (root / "state").mkdir(exist_ok=True)
+    start = now.strftime("%Y-%m-%dT00:00")
+    example.write_text(INIT_JOB.format(start=start))
+    written.append(str(example))
+    readme = root / "state" / "README.md"
+    if not readme.exists():
+        readme.write_text(STATE_README)
+        written.append(str(readme))
+    gitignore = root / "state" / ".gitignore"
+    if not gitignore.exists():
+        gitignore.write_text("*\n!.gitignore\n!README.md\n")
+        written.append(str(gitignore))
+    return written

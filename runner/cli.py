@@ -660,6 +660,61 @@ def verify(obj: Context, jobs: tuple[str, ...], as_json: bool) -> None:
         sys.exit(1)
 
 
+@cli.command()
+@workers_option
+@click.pass_obj
+def demo(obj: Context, workers: int | None) -> None:
+    """Write the invented bike-share demo's data into state/landing/ and backfill the example jobs.
+
+    Run it in the weir repository root (itself a workspace). The data is the same
+    on every machine (a fixed seed); files already there and unchanged are left alone,
+    so running it twice does nothing the second time.
+    """
+    from runner import api
+
+    tty = sys.stdout.isatty()
+    progress = _Progress(tty)
+
+    def on_plan(tasks: list[Any], replaced: int) -> bool:
+        progress.start(len(tasks))
+        return True
+
+    click.echo("writing the demo's landing data into state/landing/ ...")
+    try:
+        summary, result, at = api.demo(obj.root, datetime.now(UTC), obj.ledger, workers,
+                                       on_outcome=progress.update, on_plan=on_plan)
+    finally:
+        progress.stop()
+    click.echo(f"landing: {summary.rides} rides ({summary.bad_rows} bad rows, {summary.late_files} late files), "
+               f"{summary.dock_events} dock events; {summary.written} file(s) written, "
+               f"{summary.unchanged} already in place")
+    _backfill_summary(result)
+    click.echo("""
+Next, try:
+  weir plan                      what is due now, and why (nothing: the demo period is over)
+  weir report                    the state of every window: open state/report.html in a browser
+  weir history rides_hourly      runs, rows read, dropped, rejected and written
+  weir why rides_hourly 2026-03-25T14:00   one window explained (its late input file)
+Then change one line, e.g. in jobs/rides_daily.yaml `SUM(rides) AS rides` -> `SUM(rides) * 1 AS rides`:
+  weir stale                     exactly which windows are now out of date, and why
+  weir why rides_daily 2026-03-25          the changed line, as a diff
+  weir backfill rides_daily --downstream   recompute them (and what reads them)""")
+    if result.failed:
+        sys.exit(1)
+
+
+@cli.command()
+@click.argument("directory", type=click.Path(file_okay=False, path_type=Path))
+def init(directory: Path) -> None:
+    """Start a new workspace in DIRECTORY: jobs/ with one commented example job, and state/."""
+    from runner import api
+
+    written = api.init(directory, datetime.now(UTC))
+    for path in written:
+        click.echo(f"wrote {path}")
+    click.echo(f"next: cd {directory} && weir check")
+
+
 def main(argv: list[str] | None = None) -> None:
     """Entry point: run the CLI, turning user errors into one line and an exit status."""
     from runner.errors import SpecProblems, WeirError

@@ -58,7 +58,8 @@ def default_workers() -> int:
     return max(1, os.cpu_count() or 1)
 
 
-POOL_THRESHOLD = 6  # windows to run at once before worker processes are worth starting
+POOL_STARTUP_SECONDS = 3.0  # about what starting worker processes costs (imports): measured, rounded up
+DEFAULT_WINDOW_SECONDS = 0.2  # a window's guess before any of its job's runs are recorded
 
 
 def run_tasks(tasks: list[Task], settings: Settings, workers: int,
@@ -100,6 +101,7 @@ def run_tasks(tasks: list[Task], settings: Settings, workers: int,
     def stopped() -> bool:
         return should_stop is not None and should_stop()
 
+    estimate = _estimates(ctx, {t.job for t in tasks}) if workers > 1 else {}
     to_run: list[int] = []
     running: dict[Future[dict[str, Any]], int] = {}
     pool: ProcessPoolExecutor | None = None
@@ -119,7 +121,8 @@ def run_tasks(tasks: list[Task], settings: Settings, workers: int,
                 to_run.clear()
                 if not running:
                     break
-            if pool is None and workers > 1 and len(to_run) >= POOL_THRESHOLD:
+            if pool is None and workers > 1 and len(to_run) > 1 and (
+                    sum(estimate[tasks[i].job] for i in to_run) > POOL_STARTUP_SECONDS):
                 pool = _start_pool(settings, workers)
             if pool is not None:
                 while to_run and len(running) < workers * 2:
@@ -148,6 +151,19 @@ def run_tasks(tasks: list[Task], settings: Settings, workers: int,
             os.environ["POLARS_MAX_THREADS"] = saved_env
     return [o or Outcome(t.job, t.window.id, "not started", "stopped before it started")
             for t, o in zip(tasks, outcomes, strict=True)]
+
+
+def _estimates(ctx: RunContext, jobs: set[str]) -> dict[str, float]:
+    """Median recorded seconds per window of each job (a default guess when none ran yet)."""
+    out = {}
+    for job in jobs:
+        try:
+            stats = ctx.ledger.run_stats(job)
+            median = stats["seconds"].median() if stats.height else None
+        except Exception:  # noqa: BLE001 - an estimate is only a hint
+            median = None
+        out[job] = float(median) if median is not None else DEFAULT_WINDOW_SECONDS
+    return out
 
 
 def _start_pool(settings: Settings, workers: int) -> ProcessPoolExecutor:

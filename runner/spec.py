@@ -125,6 +125,21 @@ ColumnDecl = Annotated[Column, BeforeValidator(_column)]
 Columns = dict[Identifier, ColumnDecl]
 
 
+def _percent(value: Any) -> float:
+    raw = source_text(value)
+    text = str(raw).strip()
+    try:
+        number = float(text[:-1]) / 100 if text.endswith("%") else float(text)
+    except ValueError:
+        raise ValueError(f"bad fraction {text!r}: write 50% or 0.5") from None
+    if number < 0:
+        raise ValueError("must not be negative")
+    return number
+
+
+Fraction = Annotated[float, BeforeValidator(_percent), Field(json_schema_extra={"examples": ["50%", 0.5]})]
+
+
 class FileInput(_Model):
     """Files matched by a path template (with globs) for each window."""
 
@@ -144,7 +159,7 @@ class FileInput(_Model):
     key: list[Identifier] | None = Field(default=None, description="columns unique within the window")
     on_bad_rows: Literal["fail", "quarantine", "drop"] = "fail"
     max_bad_rows: int | None = Field(default=None, ge=0)
-    max_bad_fraction: float | None = Field(default=None, ge=0, le=1)
+    max_bad_fraction: Fraction | None = Field(default=None, description="e.g. 2% or 0.02")
 
     @field_validator("files")
     @classmethod
@@ -257,21 +272,6 @@ Step = Annotated[
 class RowsCheck(_Model):
     min: int | None = Field(default=None, ge=0)
     max: int | None = Field(default=None, ge=0)
-
-
-def _percent(value: Any) -> float:
-    raw = source_text(value)
-    text = str(raw).strip()
-    try:
-        number = float(text[:-1]) / 100 if text.endswith("%") else float(text)
-    except ValueError:
-        raise ValueError(f"bad fraction {text!r}: write 50% or 0.5") from None
-    if number < 0:
-        raise ValueError("must not be negative")
-    return number
-
-
-Fraction = Annotated[float, BeforeValidator(_percent), Field(json_schema_extra={"examples": ["50%", 0.5]})]
 
 
 class ChangeCheck(_Model):
