@@ -596,3 +596,17 @@ def init(target: Path | str, now: datetime) -> list[str]:
         gitignore.write_text("*\n!.gitignore\n!README.md\n")
         written.append(str(gitignore))
     return written
+
+
+def advise(root: Path | str, jobs: list[str], ledger_url: str | None = None) -> list[dict[str, Any]]:
+    """Per job: rows and seconds per window (median, p95), overhead share, and suggestions."""
+    from runner.advise import advise_job
+
+    ws = load_workspace(root, thorough=False)
+    ledger = open_ledger(ws.root, ledger_url, create=False)
+    out = []
+    for job in ws.select(jobs):
+        cad = ws.cadence(job)
+        what = f"every {cad.every}" if cad.every else f"cron '{cad.cron}'"
+        out.append(advise_job(job, what, ledger.run_stats(job)).as_dict())
+    return out

@@ -661,6 +661,32 @@ def verify(obj: Context, jobs: tuple[str, ...], as_json: bool) -> None:
 
 
 @cli.command()
+@click.argument("jobs", nargs=-1)
+@json_option
+@click.pass_obj
+def advise(obj: Context, jobs: tuple[str, ...], as_json: bool) -> None:
+    """Judge window sizes from recorded runs: rows and seconds per window (median, p95),
+    the share of time spent outside the steps, and what to change, with the numbers used."""
+    from runner import api
+
+    rows = api.advise(obj.root, list(jobs), obj.ledger)
+    if as_json:
+        _emit_json(rows)
+        return
+    console = _console()
+    for r in rows:
+        if r["runs"]:
+            figures = (f"{r['runs']} runs; rows median {r['rows_median']:g}, p95 {r['rows_p95']:g}; seconds "
+                       f"median {r['seconds_median']:.3f}, p95 {r['seconds_p95']:.3f}; overhead "
+                       f"{(r['overhead_share'] or 0):.0%}")
+        else:
+            figures = "no runs"
+        console.print(f"[bold]{r['job']}[/]  {figures}")
+        for s in r["suggestions"]:
+            console.print(f"  - {s}")
+
+
+@cli.command()
 @workers_option
 @click.pass_obj
 def demo(obj: Context, workers: int | None) -> None:
@@ -713,6 +739,37 @@ def init(directory: Path) -> None:
     for path in written:
         click.echo(f"wrote {path}")
     click.echo(f"next: cd {directory} && weir check")
+
+
+@cli.command()
+@click.option("--out", type=click.Path(dir_okay=False, path_type=Path), metavar="FILE",
+              help="Where to write the HTML report. Default: state/report.html in the workspace.")
+@click.option("--metrics", type=click.Path(dir_okay=False, path_type=Path), metavar="FILE",
+              help="Also write window counts and last run times in the Prometheus text format to FILE "
+                   "(name it *.prom in a node exporter's textfile folder).")
+@at_option
+@json_option
+@click.pass_obj
+def report(obj: Context, out: Path | None, metrics: Path | None, at: str | None, as_json: bool) -> None:
+    """Write one self-contained HTML page with the state of every window: open it in a browser.
+
+    It shows which jobs have windows that are not done, on which days (a matrix
+    of jobs by day; click a day for its windows' last runs), why (state ranges
+    with reasons), what the next tick runs, run durations and rows, and the job
+    graph. The page fetches nothing. Each file is replaced atomically; nothing
+    else is written and nothing is run.
+    """
+    from runner import reporting
+
+    result = reporting.report(obj.root, _now(at), obj.ledger, out, metrics)
+    if as_json:
+        _emit_json(result)
+        return
+    counts = ", ".join(f"{k} {v}" for k, v in result["counts"].items() if v) or "no due windows yet"
+    click.echo(f"wrote {result['report']} ({result['bytes'] / 1024:,.0f} KiB; {result['jobs']} job(s), "
+               f"{result['windows']} due window(s): {counts})")
+    if result["metrics"]:
+        click.echo(f"wrote {result['metrics']} (Prometheus text format)")
 
 
 def main(argv: list[str] | None = None) -> None:

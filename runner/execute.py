@@ -408,10 +408,11 @@ def _producer_frame(ws: Workspace, source: JobInput, producers: list[Producer], 
             raise InputError(f"input from job {source.job} is empty here and its columns are unknown; "
                              "declare them with schema: under this input")
         frame = output_frame(paths, dict(empty) if empty is not None else None)
-        if paths:
+        if paths and all(p.endswith(".parquet") for p in paths):
+            rows = pl.scan_parquet(paths).select(pl.len()).collect().item()  # from the files' metadata
             with stats.lock:
-                stats.rows_read += pl.scan_parquet(paths).select(pl.len()).collect().item() \
-                    if all(p.endswith(".parquet") for p in paths) else 0
+                stats.rows_read += rows
+                stats.counted = True
         return frame
     keys = [p.window.key for p in producers]
     rows = table_rows(_db_url(ws.root, out.database), out.table, keys) if keys else None

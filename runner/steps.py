@@ -44,9 +44,11 @@ def _module_file(root: Path, module: str) -> Path:
 
 
 def _on_path(root: Path) -> None:
-    text = str(root)
-    if text not in sys.path:
-        sys.path.insert(0, text)
+    """Python step modules are found in the workspace root and its jobs/ folder."""
+    for folder in (root / "jobs", root):
+        text = str(folder)
+        if text not in sys.path:
+            sys.path.insert(0, text)
 
 
 def code_pieces(spec: JobSpec, root: Path) -> list[tuple[str, str]]:

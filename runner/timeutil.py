@@ -46,6 +46,8 @@ def parse_duration(text: str | int | float | timedelta) -> timedelta:
             return timedelta(0)
         raise BadValue(f"bad duration {text!r}: add a unit (s, m, h, d, w), like {text}m")
     raw = str(text).strip()
+    if raw == "0":
+        return timedelta(0)
     m = _SHORT.match(raw)
     if m:
         return timedelta(seconds=int(m.group(1)) * _UNIT_SECONDS[m.group(2)])
