@@ -8,21 +8,85 @@ Pure functions over loaded jobs. Edges run producer -> consumer and come from
 from __future__ import annotations
 
 import difflib
+import heapq
 import os
 from collections.abc import Mapping
 from typing import TYPE_CHECKING
-
-import networkx as nx
 
 from runner.errors import Problem
 from runner.spec import Job, JobInput
 
 if TYPE_CHECKING:
+    import networkx as nx
+
     from runner.windows import Cadence, Window
+
+Links = dict[str, set[str]]  # job -> the other jobs it reads (its direct producers)
+
+
+def links(jobs: Mapping[str, Job]) -> Links:
+    """Each job's direct producers among `jobs` (a job's reads of itself are no link).
+
+    The runtime path uses these plain maps; the networkx graph is built only
+    for `weir check` and drawings, so that commands which run windows do not
+    pay for importing networkx.
+    """
+    out: Links = {name: set() for name in jobs}
+    for name, job in jobs.items():
+        for source in job.spec.inputs.values():
+            if isinstance(source, JobInput) and source.job in jobs and source.job != name:
+                out[name].add(source.job)
+    return out
+
+
+def order_links(producers: Links) -> list[str]:
+    """Dependency order, ties broken by name (the same order as `order` on the graph).
+
+    Raises ValueError on a cycle.
+    """
+    waiting = {n: len(p) for n, p in producers.items()}
+    consumers: dict[str, list[str]] = {n: [] for n in producers}
+    for n, ps in producers.items():
+        for p in ps:
+            consumers[p].append(n)
+    ready = [n for n, k in waiting.items() if k == 0]
+    heapq.heapify(ready)
+    out = []
+    while ready:
+        n = heapq.heappop(ready)
+        out.append(n)
+        for c in consumers[n]:
+            waiting[c] -= 1
+            if waiting[c] == 0:
+                heapq.heappush(ready, c)
+    if len(out) != len(producers):
+        raise ValueError("the job graph has a cycle")
+    return out
+
+
+def reach(producers: Links, names: list[str], forward: bool) -> set[str]:
+    """`names` and every job they feed (forward) or that feeds them (backward), transitively."""
+    nxt: dict[str, set[str]] = {n: set() for n in producers}
+    if forward:
+        for n, ps in producers.items():
+            for p in ps:
+                nxt[p].add(n)
+    else:
+        nxt = {n: set(ps) for n, ps in producers.items()}
+    seen = set(names)
+    todo = list(names)
+    while todo:
+        for m in nxt.get(todo.pop(), ()):
+            if m not in seen:
+                seen.add(m)
+                todo.append(m)
+    return seen
 
 
 def build_graph(jobs: Mapping[str, Job]) -> nx.DiGraph:
     """Job DAG (or not, see `graph_problems`): nodes are job names."""
+    import networkx as nx
+
     graph = nx.DiGraph()
     for name in sorted(jobs):
         graph.add_node(name)
@@ -36,7 +100,7 @@ def build_graph(jobs: Mapping[str, Job]) -> nx.DiGraph:
     return graph
 
 
-def graph_problems(jobs: Mapping[str, Job], graph: nx.DiGraph) -> list[Problem]:
+def graph_problems(jobs: Mapping[str, Job], graph: nx.DiGraph | None = None) -> list[Problem]:
     """Unknown producers, self-reads without a shift, cycles, shared outputs."""
     problems: list[Problem] = []
     for name, job in sorted(jobs.items()):
@@ -53,7 +117,13 @@ def graph_problems(jobs: Mapping[str, Job], graph: nx.DiGraph) -> list[Problem]:
                 close = difflib.get_close_matches(source.job, sorted(jobs), n=1)
                 hint = f" (did you mean {close[0]!r}?)" if close else f" (no job file jobs/{source.job}.yaml)"
                 problems.append(job.problem(where, f"unknown producer job {source.job!r}{hint}"))
-    for cycle in _cycles(graph):
+    try:
+        order_links(links(jobs))
+        cycles: list[list[str]] = []
+    except ValueError:  # only now is the graph library needed: to list every cycle
+        graph = graph if graph is not None else build_graph(jobs)
+        cycles = _cycles(graph)
+    for cycle in cycles:
         path = " -> ".join([*cycle, cycle[0]])
         first, second = cycle[0], cycle[1] if len(cycle) > 1 else cycle[0]
         input_name = graph.edges[first, second]["inputs"][0] if graph.has_edge(first, second) else None
@@ -86,6 +156,8 @@ def _escapes(template: str) -> bool:
 
 def _cycles(graph: nx.DiGraph) -> list[list[str]]:
     """Each elementary cycle once, rotated to start at its smallest name."""
+    import networkx as nx
+
     out = []
     for cycle in nx.simple_cycles(graph):
         i = cycle.index(min(cycle))
@@ -95,11 +167,15 @@ def _cycles(graph: nx.DiGraph) -> list[list[str]]:
 
 def order(graph: nx.DiGraph) -> list[str]:
     """Jobs in dependency order, ties broken by name (stable across runs)."""
+    import networkx as nx
+
     return list(nx.lexicographical_topological_sort(graph))
 
 
 def downstream(graph: nx.DiGraph, names: list[str]) -> list[str]:
     """`names` plus every job that reads them, transitively, in dependency order."""
+    import networkx as nx
+
     wanted = set(names)
     for name in names:
         wanted |= nx.descendants(graph, name)
@@ -135,6 +211,8 @@ def upstream_windows(consumer: Cadence, window: Window, producer: Cadence, sourc
 
 def render(graph: nx.DiGraph, jobs: Mapping[str, Job], fmt: str = "text") -> str:
     """Draw the graph as indented text, Graphviz dot, or a Mermaid flowchart."""
+    import networkx as nx
+
     names = order(graph) if nx.is_directed_acyclic_graph(graph) else sorted(graph)
     selfs = {
         n: [i for i, s in jobs[n].spec.inputs.items() if isinstance(s, JobInput) and s.job == n]

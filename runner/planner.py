@@ -67,10 +67,9 @@ def backfill(ws: Workspace, jobs: list[str], lo: datetime | None, hi: datetime |
     carry-forward jobs). Windows already current are not filtered here: the
     executor skips them after comparing fingerprints.
     """
-    from runner import graph as graphs
 
     selected = ws.select(jobs)
-    names = graphs.downstream(ws.graph, selected) if downstream else selected
+    names = ws.downstream(selected) if downstream else selected
     tasks: list[Task] = []
     index: dict[tuple[str, str], int] = {}
     not_due: dict[str, int] = {}
@@ -82,7 +81,7 @@ def backfill(ws: Workspace, jobs: list[str], lo: datetime | None, hi: datetime |
             reason = "in range"
         else:
             reach = _reach(ws, name)
-            upstream_reach = [extra_reach.get(p) for p in ws.graph.predecessors(name) if p in extra_reach]
+            upstream_reach = [extra_reach.get(p) for p in ws.producers(name) if p in extra_reach]
             if reach is None or any(r is None for r in upstream_reach):
                 extra = None
             else:
@@ -286,7 +285,8 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, now_pa
     probed_wait: list[str | None] = [None] * frame.height
     newest: list[int | None] = [None] * frame.height
     if probe is not None and has_files:
-        mask = frame.select(need.alias("n"))["n"].to_list()
+        # with_columns, not select: a bare literal (recheck_all) would select one row, not one per window
+        mask = frame.with_columns(need.alias("_need"))["_need"].to_list()
         starts = frame["start_us"].to_list()
         ends = frame["end_us"].to_list()
         for i, wanted in enumerate(mask):
@@ -298,7 +298,8 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, now_pa
         pl.Series("in_hash", probed_hash, dtype=pl.String),
         pl.Series("in_waiting", probed_wait, dtype=pl.String),
         pl.Series("in_newest", newest, dtype=pl.Int64),
-        (pl.col("window_key").is_in(pl.Series([k for j, k in snapshot.claims if j == job], dtype=pl.String)))
+        (pl.col("window_key").is_in(
+            pl.Series([k for j, k in snapshot.claims if j == job], dtype=pl.String).implode()))
         .alias("running"),
     )
     done = pl.col("state") == "done"
@@ -398,12 +399,9 @@ def assess(ws: Workspace, at: datetime, snapshot: Snapshot, now_parts: dict[str,
            probe: InputProbe | None, jobs: list[str] | None = None, recheck_all: bool = False
            ) -> dict[str, pl.DataFrame]:
     """Assess every due window of `jobs` (and, for the upstream cascade, their producers)."""
-    from runner import graph as graphs
 
     wanted = ws.select(jobs or [])
-    needed: set[str] = set(wanted)
-    for name in wanted:
-        needed |= graphs.nx.ancestors(ws.graph, name)
+    needed = set(ws.upstream(wanted))
     assessed: dict[str, pl.DataFrame] = {}
     for name in ws.order:
         if name in needed:

@@ -61,12 +61,7 @@ class InputProber:
 
 def closure(ws: Workspace, jobs: list[str]) -> list[str]:
     """`jobs` (all when empty) plus their producers, transitively, in dependency order."""
-    import networkx as nx
-
-    wanted = set(ws.select(jobs))
-    for name in list(wanted):
-        wanted |= nx.ancestors(ws.graph, name)
-    return [n for n in ws.order if n in wanted]
+    return ws.upstream(ws.select(jobs))
 
 
 def survey(ws: Workspace, ledger: Ledger, at: datetime, jobs: list[str] | None = None,

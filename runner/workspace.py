@@ -13,8 +13,6 @@ from dataclasses import dataclass, field
 from functools import cached_property
 from pathlib import Path
 
-import networkx as nx
-
 from runner import graph as graphs
 from runner.errors import Problem, SpecProblems, UsageError
 from runner.spec import Job, load_job
@@ -29,23 +27,46 @@ class Workspace:
 
     root: Path
     jobs: dict[str, Job]
-    graph: nx.DiGraph
     warnings: list[Problem] = field(default_factory=list)
     resolved_schemas: dict | None = None
+
+    @cached_property
+    def links(self) -> graphs.Links:
+        """Each job's direct producers (plain maps: the runtime path needs nothing more)."""
+        return graphs.links(self.jobs)
+
+    @cached_property
+    def graph(self):  # -> networkx.DiGraph, built on first use
+        """The job graph as a networkx DiGraph (for drawings and analysis)."""
+        return graphs.build_graph(self.jobs)
+
+    def producers(self, name: str) -> set[str]:
+        """The other jobs `name` reads directly."""
+        return self.links[name]
+
+    def upstream(self, names: list[str]) -> list[str]:
+        """`names` plus every job they read, transitively, in dependency order."""
+        wanted = graphs.reach(self.links, names, forward=False)
+        return [n for n in self.order if n in wanted]
+
+    def downstream(self, names: list[str]) -> list[str]:
+        """`names` plus every job that reads them, transitively, in dependency order."""
+        wanted = graphs.reach(self.links, names, forward=True)
+        return [n for n in self.order if n in wanted]
 
     @property
     def output_schemas(self) -> dict:
         """Each job's output schema as resolved from its SQL (None where unknown); computed once."""
         if self.resolved_schemas is None:
             schemas: dict = {}
-            _sql_problems(self.jobs, self.graph, schemas)
+            _sql_problems(self.jobs, schemas)
             self.resolved_schemas = schemas
         return self.resolved_schemas
 
     @cached_property
     def order(self) -> list[str]:
         """Job names in dependency order."""
-        return graphs.order(self.graph)
+        return graphs.order_links(self.links)
 
     @cached_property
     def _cadences(self) -> dict[str, Cadence]:
@@ -71,7 +92,7 @@ class Workspace:
         for n in names:
             self.job(n)
         if downstream:
-            return graphs.downstream(self.graph, list(names))
+            return self.downstream(list(names))
         wanted = set(names)
         return [n for n in self.order if n in wanted]
 
@@ -124,20 +145,27 @@ def load_workspace(root: Path | str = ".", resolve_sql: bool = True, thorough: b
             problems.append(Problem(_display(file), 1, 1, "", f"job {job.name!r} is defined twice ({jobs[job.name].file})"))
             continue
         jobs[job.name] = job
-    graph = graphs.build_graph(jobs)
-    problems.extend(graphs.graph_problems(jobs, graph))
+    problems.extend(graphs.graph_problems(jobs))
     warnings: list[Problem] = []
     schemas: dict | None = {} if thorough and resolve_sql else None
     if thorough:
         problems.extend(_output_collisions(jobs))
     # Every problem of a run is reported together; SQL is resolved in dependency
     # order, which needs a graph without cycles (cycles are reported above).
-    if thorough and resolve_sql and nx.is_directed_acyclic_graph(graph):
-        for p in _sql_problems(jobs, graph, schemas):
+    if thorough and resolve_sql and _acyclic(jobs):
+        for p in _sql_problems(jobs, schemas):
             (warnings if p.severity == "warning" else problems).append(p)
     if problems:
         raise SpecProblems(problems)
-    return Workspace(root=root, jobs=jobs, graph=graph, warnings=warnings, resolved_schemas=schemas)
+    return Workspace(root=root, jobs=jobs, warnings=warnings, resolved_schemas=schemas)
+
+
+def _acyclic(jobs: dict[str, Job]) -> bool:
+    try:
+        graphs.order_links(graphs.links(jobs))
+    except ValueError:
+        return False
+    return True
 
 
 def _output_collisions(jobs: dict[str, Job]) -> list[Problem]:
@@ -162,12 +190,12 @@ def _output_collisions(jobs: dict[str, Job]) -> list[Problem]:
     return problems
 
 
-def _sql_problems(jobs: dict[str, Job], graph: nx.DiGraph, schemas: dict) -> list[Problem]:
+def _sql_problems(jobs: dict[str, Job], schemas: dict) -> list[Problem]:
     """SQL findings of every job; fills `schemas` with each job's resolved output schema."""
     from runner.sqlcheck import resolve_job
 
     problems: list[Problem] = []
-    for name in graphs.order(graph):
+    for name in graphs.order_links(graphs.links(jobs)):
         job = jobs[name]
         resolution = resolve_job(job, schemas)
         schemas[name] = resolution.output

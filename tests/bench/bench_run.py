@@ -129,15 +129,15 @@ def bench_big(base: Path, rows: int, repeats: int, skip_pandas: bool) -> None:
     (ws / "jobs").mkdir(parents=True, exist_ok=True)
     (ws / "jobs" / "rides_big.yaml").write_text(BIG_JOB)
     scripts = {"hand": HAND, "duckdb": DUCK, "pandas": PANDAS}
-    for name, text in scripts.items():
-        (base / f"{name}.py").write_text(textwrap.dedent(text))
+    for name, text in scripts.items():  # file names must not shadow the modules they import
+        (base / f"bench_{name}.py").write_text(textwrap.dedent(text))
     runs = {
-        "polars script (streaming)": [PY, str(base / "hand.py"), str(data), str(base / "hand.parquet")],
+        "polars script (streaming)": [PY, str(base / "bench_hand.py"), str(data), str(base / "hand.parquet")],
         "weir run": [*WEIR, "-C", str(ws), "run", "rides_big", "--window", "2026-03-22", "--force"],
-        "duckdb script": [PY, str(base / "duckdb.py"), str(data), str(base / "duck.parquet")],
+        "duckdb script": [PY, str(base / "bench_duckdb.py"), str(data), str(base / "duck.parquet")],
     }
     if not skip_pandas:
-        runs["pandas script"] = [PY, str(base / "pandas.py"), str(data), str(base / "pandas.parquet")]
+        runs["pandas script"] = [PY, str(base / "bench_pandas.py"), str(data), str(base / "pandas.parquet")]
     results: dict[str, list[tuple[float, float]]] = {k: [] for k in runs}
     for i in range(repeats):  # interleaved, so load on the machine hits every tool alike
         for name, cmd in runs.items():
