@@ -8,13 +8,13 @@ loaded `Workspace`) and an explicit clock `at`; nothing here reads the time.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from datetime import datetime
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
 from runner.errors import UsageError
 from runner.spec import DatabaseInput, FileInput, JobInput
-from runner.timeutil import BadValue, format_duration, format_instant, format_utc
+from runner.timeutil import BadValue, format_duration, format_instant, format_utc, parse_utc
 from runner.workspace import Workspace, load_workspace
 
 
@@ -227,6 +227,15 @@ def history(root: Path | str, job: str, window_id: str | None = None, ledger_url
     key = find_window(ws, job, window_id).key if window_id else None
     ledger = open_ledger(ws.root, ledger_url, create=False)
     rows = ledger.history(job, key, limit)
+    live = ledger.claimed(job)
+    for row in rows:
+        if row["status"] == "running" and (job, row["window_key"]) not in live:
+            row["status"] = "abandoned"  # no live claim: the process running it has ended
+    late_after = ws.jobs[job].spec.late_after
+    for row in rows:
+        row["late"] = bool(late_after is not None and row.get("ingested_at") and row.get("window_end")
+                           and parse_utc(row["window_end"]) + late_after
+                           < datetime.strptime(row["ingested_at"], "%Y-%m-%dT%H:%M:%S.%fZ").replace(tzinfo=UTC))
     return rows
 
 
@@ -284,6 +293,9 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
     from runner.pool import Settings, run_tasks
 
     ws = ws or load_workspace(root, thorough=False)
+    watch = _gate_watch(ws)
+    # what the gate watches, seen before planning: a change while the tick plans must not be absorbed
+    seen = _gate_files(ws, watch)
     ledger = open_ledger(ws.root, ledger_url)
     owner = owner_id()
     idle = None
@@ -310,7 +322,7 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
                               {p.job: len(p.waiting) for p in plans if p.waiting})
     finally:
         ledger.dispose()  # closes SQLite cleanly (a checkpoint) before the gate looks at its file
-        _update_gate(ws, ledger_url, idle, at)
+        _update_gate(ws, ledger_url, idle, at, watch, seen)
 
 
 def stale(root: Path | str, jobs: list[str], at: datetime, ledger_url: str | None = None
@@ -435,7 +447,7 @@ def verify(root: Path | str, jobs: list[str], ledger_url: str | None = None) -> 
     import polars as pl
 
     from runner.sinks import read_table_digest
-    from runner.sources import _expand_sqlite, file_sha256
+    from runner.sources import _expand_sqlite, file_sha256, table_rows
 
     ws = load_workspace(root, thorough=False)
     ledger = open_ledger(ws.root, ledger_url, create=False)
@@ -455,8 +467,11 @@ def verify(root: Path | str, jobs: list[str], ledger_url: str | None = None) -> 
                 else:
                     verdict = None
             else:
-                digest = read_table_digest(_expand_sqlite(ws.root, out.database), out.table, row["window_key"])
+                url = _expand_sqlite(ws.root, out.database)
+                digest = read_table_digest(url, out.table, row["window_key"])
                 verdict = "missing" if digest is None else ("changed" if digest != row["output_digest"] else None)
+                if verdict == "changed" and table_rows(url, out.table, [row["window_key"]]).height == 0:
+                    verdict = "missing"  # the window's rows were deleted (a run that wrote none matches)
             if verdict:
                 bad[verdict].append(row["window_key"])
                 problems.append({"job": job, "window": row["window_id"], "output": row["output"],
@@ -489,17 +504,12 @@ def _dependency_sorted(ws: Workspace, items: list) -> list:
     return sorted(items, key=lambda i: (rank[i.job], i.window.start))
 
 
-def _update_gate(ws: Workspace, ledger_url: str | None, assessed, at: datetime) -> None:
-    """Write the tick gate after a tick that found nothing due (`assessed`), else remove it."""
-    from runner import gate
-    from runner.planner import next_change
+def _gate_watch(ws: Workspace) -> tuple[list[str], list[str]] | None:
+    """The input templates and python step module files the tick gate watches (None: cannot watch)."""
     from runner.spec import FileInput as _FileInput
     from runner.spec import PythonStep
     from runner.steps import StepError, _module_file
 
-    if assessed is None:
-        gate.clear(ws.root)
-        return
     templates = sorted({s.files for j in ws.jobs.values() for s in j.spec.inputs.values()
                         if isinstance(s, _FileInput)})
     modules = []
@@ -509,9 +519,26 @@ def _update_gate(ws: Workspace, ledger_url: str | None, assessed, at: datetime) 
                 if isinstance(step, PythonStep):
                     modules.append(str(_module_file(ws.root, step.python.split(":")[0])))
     except StepError:
+        return None
+    return templates, sorted(set(modules))
+
+
+def _gate_files(ws: Workspace, watch: tuple[list[str], list[str]] | None) -> str | None:
+    from runner import gate
+
+    return gate.observe_files(ws.root, *watch) if watch is not None else None
+
+
+def _update_gate(ws: Workspace, ledger_url: str | None, assessed, at: datetime,
+                 watch: tuple[list[str], list[str]] | None, seen: str | None) -> None:
+    """Write the tick gate after a tick that found nothing due (`assessed`), else remove it."""
+    from runner import gate
+    from runner.planner import next_change
+
+    if assessed is None or watch is None:
         gate.clear(ws.root)
         return
-    gate.write(ws.root, ledger_url, templates, sorted(set(modules)), next_change(ws, assessed, at))
+    gate.write(ws.root, ledger_url, *watch, next_change(ws, assessed, at), seen=seen)
 
 
 # ---------------------------------------------------------------- demo and new workspaces

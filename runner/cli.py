@@ -352,7 +352,8 @@ def history(obj: Context, job: str, window_id: str | None, limit: int, as_json: 
                 "written", "fingerprint", "error"):
         table.add_column(col)
     for r in rows:
-        table.add_row(str(r["id"]), r["window_id"], r["status"], (r["started_at"] or "")[:19],
+        table.add_row(str(r["id"]), r["window_id"], r["status"] + (" late" if r.get("late") else ""),
+                      (r["started_at"] or "")[:19],
                       f"{r['seconds']:.2f}" if r["seconds"] is not None else "", _n(r["rows_read"]),
                       _n(r["rows_dropped"]), _n(r["rows_rejected"]), _n(r["rows_written"]),
                       (r["fingerprint"] or "")[:12], (r["error"] or "")[:120])

@@ -142,7 +142,7 @@ def graph_problems(jobs: Mapping[str, Job], graph: nx.DiGraph | None = None) -> 
                 field, f"job {seen[target]!r} already writes {target!r}; each output belongs to one job"))
         else:
             seen[target] = name
-        if out.path is not None and _escapes(out.path):
+        if out.path is not None and (_escapes(out.path) or _rendered_escapes(out.path, job)):
             problems.append(job.problem(field, f"output path {out.path!r} leaves the workspace; use a relative path inside it"))
     return problems
 
@@ -152,6 +152,19 @@ def _escapes(template: str) -> bool:
     if os.path.isabs(template) or os.path.isabs(static):
         return True
     return os.path.normpath(template).split(os.sep)[0] == ".."
+
+
+def _rendered_escapes(template: str, job: Job) -> bool:
+    """The template rendered for the job's first window leaves the workspace (placeholders may hold `..`)."""
+    from runner.paths import render
+    from runner.windows import Cadence
+
+    try:
+        first = Cadence.of(job.spec.window).first()
+        path = render(template, first) if first is not None else template
+    except (ValueError, KeyError, IndexError):
+        return False
+    return os.path.isabs(path) or os.path.normpath(path).split(os.sep)[0] == ".."
 
 
 def _cycles(graph: nx.DiGraph) -> list[list[str]]:

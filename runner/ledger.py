@@ -339,6 +339,10 @@ class Ledger:
         values = {"finished_at": utc_text(), **values}
         with self._tx() as conn:
             conn.execute(sa.update(runs).where(runs.c.id == run_id).values(**values))
+            # earlier attempts at this window that never finished: their process died
+            conn.execute(sa.update(runs).where(
+                runs.c.job == job, runs.c.window_key == key, runs.c.status == "running", runs.c.id < run_id,
+            ).values(status="abandoned"))
             current = conn.execute(sa.select(windows).where(
                 windows.c.job == job, windows.c.window_key == key)).mappings().first()
             state = dict(window)
@@ -438,6 +442,40 @@ class Ledger:
         with self._tx(read=True) as conn:
             rows = conn.execute(q).all()
         return pl.DataFrame([tuple(r) for r in rows], schema=schema, orient="row")
+
+    def last_runs(self, job: str) -> pl.DataFrame:
+        """Each window's last finished run (the run its state row points at), one query; for reports."""
+        import polars as pl
+
+        cols = {"run_id": pl.Int64, "status": pl.String, "finished_at": pl.String, "seconds": pl.Float64,
+                "rows_read": pl.Int64, "rows_rejected": pl.Int64, "rows_written": pl.Int64,
+                "fingerprint": pl.String, "error": pl.String}
+        if self.engine is None:
+            return pl.DataFrame(schema=cols)
+        q = (sa.select(runs.c.id, *[runs.c[c] for c in list(cols)[1:]])
+             .select_from(windows.join(runs, runs.c.id == windows.c.run_id)).where(windows.c.job == job))
+        with self._tx(read=True) as conn:
+            rows = conn.execute(q).all()
+        return pl.DataFrame([tuple(r) for r in rows], schema=cols, orient="row")
+
+    def newest_runs(self) -> dict[str, dict[str, Any]]:
+        """Per job: `success` (finish time of its newest done run) and `last` (its newest finished run)."""
+        if self.engine is None:
+            return {}
+        out: dict[str, dict[str, Any]] = {}
+        finished = runs.c.status.in_(["done", "failed"])
+        with self._tx(read=True) as conn:
+            q = sa.select(runs.c.job, sa.func.max(runs.c.finished_at)).where(runs.c.status == "done")
+            for job, when in conn.execute(q.group_by(runs.c.job)):
+                out.setdefault(job, {})["success"] = when
+            jobs = [r[0] for r in conn.execute(sa.select(runs.c.job).where(finished).distinct())]
+            for job in jobs:
+                row = conn.execute(sa.select(runs.c.id, runs.c.status, runs.c.finished_at, runs.c.seconds)
+                                   .where(runs.c.job == job, finished)
+                                   .order_by(runs.c.finished_at.desc(), runs.c.id.desc()).limit(1)).mappings().first()
+                if row is not None:
+                    out.setdefault(job, {})["last"] = dict(row)
+        return out
 
 
 def _gone(owner: str) -> bool:

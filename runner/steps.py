@@ -44,11 +44,12 @@ def _module_file(root: Path, module: str) -> Path:
 
 
 def _on_path(root: Path) -> None:
-    """Python step modules are found in the workspace root and its jobs/ folder."""
+    """Python step modules are found in the workspace root and its jobs/ folder, before anywhere else."""
     for folder in (root / "jobs", root):
         text = str(folder)
-        if text not in sys.path:
-            sys.path.insert(0, text)
+        if text in sys.path:
+            sys.path.remove(text)
+        sys.path.insert(0, text)
 
 
 def code_pieces(spec: JobSpec, root: Path) -> list[tuple[str, str]]:
@@ -77,9 +78,13 @@ def load_callable(root: Path, ref: str) -> Any:
     module_name, func_name = ref.split(":")
     path = _module_file(root, module_name)
     stamp = (path.stat().st_mtime, path.stat().st_size)
+    loaded = sys.modules.get(module_name)
+    if loaded is not None and Path(getattr(loaded, "__file__", "") or "").resolve() != path.resolve():
+        del sys.modules[module_name]  # a module of that name from another workspace
+        loaded = None
     try:
-        if module_name in sys.modules and _loaded.get(module_name) != stamp:
-            module = importlib.reload(sys.modules[module_name])
+        if loaded is not None and _loaded.get(module_name) != stamp:
+            module = importlib.reload(loaded)
         else:
             module = importlib.import_module(module_name)
     except Exception as exc:
