@@ -33,6 +33,9 @@ from runner.windows import Window
 from runner.workspace import Workspace
 
 CLAIM_TTL = 120.0
+# Below this much input a window runs in memory in one go (no streaming engine
+# start-up, no reading the result back); above it, polars streams to the file.
+SMALL_INPUT_BYTES = 64 * 1024 * 1024
 
 
 @dataclass
@@ -140,11 +143,18 @@ class Prepared:
 
 
 def spec_and_code(ws: Workspace, job: str) -> tuple[fp.Part, fp.Part]:
-    """The spec and code components of `job` as its files are now."""
+    """The spec and code components of `job` as its files were when the workspace was loaded.
+
+    Computed once per loaded workspace (a long-running `weir serve` loads the
+    workspace again before each tick, so edits are still seen).
+    """
     from runner.steps import code_pieces
 
-    spec = ws.jobs[job].spec
-    return fp.spec_part(spec), fp.code_part(code_pieces(spec, ws.root))
+    cache = ws.__dict__.setdefault("_spec_and_code", {})
+    if job not in cache:
+        spec = ws.jobs[job].spec
+        cache[job] = (fp.spec_part(spec), fp.code_part(code_pieces(spec, ws.root)))
+    return cache[job]
 
 
 def producer_windows(ws: Workspace, job: str, window: Window) -> list[tuple[str, str, Window]]:
@@ -208,27 +218,38 @@ def prepare(ctx: RunContext, job: str, window: Window, database_entries: list[di
 # ---------------------------------------------------------------- running
 
 
-def is_current(ctx: RunContext, job: str, window: Window) -> bool:
-    """True when the window is done with the fingerprint it would have now (nothing to run).
+def precheck(ctx: RunContext, job: str, window: Window) -> tuple[bool, Prepared | None]:
+    """(current, prepared): whether the window is done with the fingerprint it would have now,
+    and what was found on the way (for `run_window` to reuse).
 
-    A cheap pre-check without a claim; `run_window` checks again under its claim.
+    A cheap check without a claim; `run_window` compares again under its claim.
     """
     from runner.errors import WeirError
 
     if any(isinstance(s, DatabaseInput) for s in ctx.ws.jobs[job].spec.inputs.values()):
-        return False  # the rows must be read to know
-    current = ctx.ledger.state_row(job, window.key)
-    if current is None or current["state"] != "done" or current.get("output_state"):
-        return False
+        return False, None  # the rows must be read to know
     try:
         prep = prepare(ctx, job, window)
     except (WeirError, OSError):
-        return False
-    return prep.waiting is None and prep.fingerprint == current["fingerprint"]
+        return False, None
+    current = ctx.ledger.state_row(job, window.key)
+    if current is None or current["state"] != "done" or current.get("output_state"):
+        return False, prep
+    return prep.waiting is None and prep.fingerprint == current["fingerprint"], prep
 
 
-def run_window(ctx: RunContext, job: str, window: Window, force: bool = False) -> Outcome:
-    """Run one window unless it is current, claimed elsewhere or waiting; retry on failure."""
+def is_current(ctx: RunContext, job: str, window: Window) -> bool:
+    """True when the window is done with the fingerprint it would have now (nothing to run)."""
+    return precheck(ctx, job, window)[0]
+
+
+def run_window(ctx: RunContext, job: str, window: Window, force: bool = False,
+               prepared: Prepared | None = None) -> Outcome:
+    """Run one window unless it is current, claimed elsewhere or waiting; retry on failure.
+
+    `prepared` (from `precheck`, moments before) saves finding the inputs twice on
+    the first attempt; retries always look again.
+    """
     assert ctx.claims is not None
     started = time.perf_counter()
     if not ctx.claims.take(job, window.key):
@@ -240,7 +261,7 @@ def run_window(ctx: RunContext, job: str, window: Window, force: bool = False) -
         attempt = 0
         while True:
             attempt += 1
-            outcome = _attempt(ctx, job, window, force, attempt)
+            outcome = _attempt(ctx, job, window, force, attempt, prepared if attempt == 1 else None)
             if outcome.status in ("done", "skipped", "waiting") or attempt > retries:
                 released = outcome.status == "done"  # finish_run released the claim
                 break
@@ -253,7 +274,8 @@ def run_window(ctx: RunContext, job: str, window: Window, force: bool = False) -
             ctx.ledger.release(job, window.key, ctx.owner)
 
 
-def _attempt(ctx: RunContext, job: str, window: Window, force: bool, attempt: int) -> Outcome:
+def _attempt(ctx: RunContext, job: str, window: Window, force: bool, attempt: int,
+             prepared: Prepared | None = None) -> Outcome:
     from runner.sources import InputStats, database_frame
 
     ws = ctx.ws
@@ -269,7 +291,7 @@ def _attempt(ctx: RunContext, job: str, window: Window, force: bool, attempt: in
                 frame, entry = database_frame(ws.root, name, source, window, ws.cadence(job).tz.key, stats)
                 db_frames[name] = frame
                 db_entries.append(entry)
-        prep = prepare(ctx, job, window, db_entries)
+        prep = prepared if prepared is not None and not db_entries else prepare(ctx, job, window, db_entries)
         if prep.waiting:
             return Outcome(job, window.id, "waiting", prep.waiting)
         current = ctx.ledger.state_row(job, window.key)
@@ -330,12 +352,13 @@ def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: 
     previous = _previous_output(ctx, job, window)
     if out.path is not None:
         relative = render(out.path, window)
-        staged = sinks.stage_file(ws.root, relative, result, out.file_format, stamps)
+        staged = sinks.stage_file(ws.root, relative, result, out.file_format, stamps,
+                                  streaming=_input_bytes(ws, prep) > SMALL_INPUT_BYTES)
         rejected_stage = None
         try:
             step_seconds = time.perf_counter() - step_start
             stats.check_fractions()
-            check_output(staged.scan(), list(out.checks), previous)
+            check_output(staged.scan(), list(out.checks), previous, output=relative)
             rejected_path = relative + ".rejected.parquet"
             if stats.rejected:
                 rejected_stage = sinks.stage_frame_file(ws.root, rejected_path, pl.concat(stats.rejected,
@@ -359,7 +382,7 @@ def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: 
             frame = frame.with_columns([pl.lit(v).alias(k) for k, v in stamps.items() if k != "window_start"])
         step_seconds = time.perf_counter() - step_start
         stats.check_fractions()
-        check_output(frame.lazy(), list(out.checks), previous)
+        check_output(frame.lazy(), list(out.checks), previous, output=f"table {out.table}")
         rows, digest = sinks.write_table(_db_url(ws.root, out.database), out.table, frame, window.key)
         location, checksum = f"table {out.table}", None
     finished = {
@@ -372,11 +395,27 @@ def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: 
         "window_end": Window(window.end, window.end, window.tz).key, "window_id": window.id, "state": "done",
         "fingerprint": prep.fingerprint, **{f"fp_{c}": prep.parts[c].hash for c in fp.COMPONENTS},
         "output": location, "output_digest": digest, "output_checksum": checksum,
-        "ingested_at": _ingested(prep), "seconds": finished["seconds"],
+        "ingested_at": _ingested(prep), "seconds": finished["seconds"], "last_fingerprint": prep.fingerprint,
         "output_state": None,
     }
     ctx.ledger.finish_run(run_id, job, window.key, ctx.owner, finished, state)
     return Outcome(job, window.id, "done", "ran", run_id, step_seconds=step_seconds, rows_written=rows)
+
+
+def _input_bytes(ws: Workspace, prep: Prepared) -> int:
+    """Bytes of the window's input files and producer outputs (database rows are in memory already)."""
+    import os
+
+    total = 0
+    for found in prep.files.values():
+        for path in found.paths:
+            with contextlib.suppress(OSError):
+                total += os.path.getsize(path)
+    for p in prep.producers:
+        if p.state and p.state.get("output") and not str(p.state["output"]).startswith("table "):
+            with contextlib.suppress(OSError):
+                total += os.path.getsize(ws.root / p.state["output"])
+    return total
 
 
 def _ingested(prep: Prepared) -> str | None:

@@ -343,29 +343,26 @@ class Ledger:
             conn.execute(sa.update(runs).where(
                 runs.c.job == job, runs.c.window_key == key, runs.c.status == "running", runs.c.id < run_id,
             ).values(status="abandoned"))
-            current = conn.execute(sa.select(windows).where(
-                windows.c.job == job, windows.c.window_key == key)).mappings().first()
             state = dict(window)
             state.update(job=job, window_key=key, run_id=run_id, finished_at=values["finished_at"])
-            attempted = conn.execute(sa.select(runs.c.fingerprint).where(runs.c.id == run_id)).scalar()
-            state["last_fingerprint"] = attempted
-            if state["state"] == "failed" and current is not None:
-                # keep the last good output's identity: consumers and digests still refer to it
-                for col in ("output", "output_digest", "output_checksum", "good_run_id", "fingerprint",
-                            "fp_spec", "fp_code", "fp_input", "fp_upstream", "ingested_at"):
-                    if state.get(col) is None:
-                        state[col] = current[col]
-                state["failures"] = (current["failures"] or 0) + 1
-            elif state["state"] == "failed":
-                state["failures"] = 1
+            if "last_fingerprint" not in state:
+                state["last_fingerprint"] = conn.execute(
+                    sa.select(runs.c.fingerprint).where(runs.c.id == run_id)).scalar()
+            where = (windows.c.job == job, windows.c.window_key == key)
+            if state["state"] == "failed":
+                current = conn.execute(sa.select(windows).where(*where)).mappings().first()
+                if current is not None:
+                    # keep the last good output's identity: consumers and digests still refer to it
+                    for col in ("output", "output_digest", "output_checksum", "good_run_id", "fingerprint",
+                                "fp_spec", "fp_code", "fp_input", "fp_upstream", "ingested_at"):
+                        if state.get(col) is None:
+                            state[col] = current[col]
+                state["failures"] = (current["failures"] or 0) + 1 if current is not None else 1
             else:
                 state["failures"] = 0
                 state["good_run_id"] = run_id
-            if current is None:
+            if conn.execute(sa.update(windows).where(*where).values(**state)).rowcount == 0:
                 conn.execute(sa.insert(windows).values(**state))
-            else:
-                conn.execute(sa.update(windows).where(
-                    windows.c.job == job, windows.c.window_key == key).values(**state))
             if owner is not None:
                 self.release(job, key, owner, conn)
 

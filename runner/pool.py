@@ -17,7 +17,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from runner.execute import Outcome, RunContext, is_current, run_window
+from runner.execute import Outcome, RunContext, precheck, run_window
 from runner.planner import Task
 
 _worker: dict[str, Any] = {}
@@ -103,6 +103,7 @@ def run_tasks(tasks: list[Task], settings: Settings, workers: int,
 
     estimate = _estimates(ctx, {t.job for t in tasks}) if workers > 1 else {}
     to_run: list[int] = []
+    prepared: dict[int, Any] = {}
     running: dict[Future[dict[str, Any]], int] = {}
     pool: ProcessPoolExecutor | None = None
     saved_env = os.environ.get("POLARS_MAX_THREADS")
@@ -113,7 +114,8 @@ def run_tasks(tasks: list[Task], settings: Settings, workers: int,
                 if outcomes[i] is not None:
                     continue
                 t = tasks[i]
-                if not settings.force and is_current(ctx, t.job, t.window):
+                current, prepared[i] = (False, None) if settings.force else precheck(ctx, t.job, t.window)
+                if current:
                     finish(i, Outcome(t.job, t.window.id, "skipped", "current: already done with this fingerprint"))
                 else:
                     to_run.append(i)
@@ -127,6 +129,7 @@ def run_tasks(tasks: list[Task], settings: Settings, workers: int,
             if pool is not None:
                 while to_run and len(running) < workers * 2:
                     i = to_run.pop(0)
+                    prepared.pop(i, None)  # the worker looks for itself
                     running[pool.submit(_run_in_worker, tasks[i].job, tasks[i].window.key)] = i
                 if running:
                     done, _ = wait(running, return_when=FIRST_COMPLETED)
@@ -136,7 +139,7 @@ def run_tasks(tasks: list[Task], settings: Settings, workers: int,
             elif to_run:
                 i = to_run.pop(0)
                 t = tasks[i]
-                finish(i, run_window(ctx, t.job, t.window, force=settings.force))
+                finish(i, run_window(ctx, t.job, t.window, force=settings.force, prepared=prepared.pop(i, None)))
     except BaseException:
         if pool is not None:
             pool.shutdown(wait=False, cancel_futures=True)

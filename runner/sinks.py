@@ -48,10 +48,14 @@ class Staged:
     checksum: str
     size: int
     location: str
+    frame: pl.DataFrame | None = None  # the written rows, kept when they were computed in memory
 
     def scan(self) -> pl.LazyFrame:
+        """The staged rows (from memory when kept, else read back from the temporary file)."""
         import polars as pl
 
+        if self.frame is not None:
+            return self.frame.lazy()
         return pl.scan_parquet(self.tmp) if self.fmt == "parquet" else pl.scan_csv(self.tmp)
 
     def commit(self) -> None:
@@ -88,7 +92,13 @@ def clean_leftovers(final: Path) -> int:
 
 def stage_file(root: Path, relative: str, result: pl.LazyFrame, fmt: str,
                stamps: dict[str, Any] | None = None, streaming: bool = True) -> Staged:
-    """Write `result` in canonical order to a temporary file beside the final path."""
+    """Write `result` in canonical order to a temporary file beside the final path.
+
+    `streaming`: run the query on polars' streaming engine and sink straight to
+    the file, then read the file back for its row count and digest (memory
+    stays bounded whatever the size). Otherwise (small inputs) the query runs
+    once in memory and the rows, digest and later checks all use that frame.
+    """
     import polars as pl
 
     final = target(root, relative)
@@ -103,21 +113,34 @@ def stage_file(root: Path, relative: str, result: pl.LazyFrame, fmt: str,
     ordered = result.sort(keys, nulls_last=True, maintain_order=True) if keys else result
     if stamps:
         ordered = ordered.with_columns([pl.lit(v).alias(k) for k, v in stamps.items()])
+    kept = None
     try:
-        if fmt == "parquet":
-            ordered.sink_parquet(tmp, engine="streaming" if streaming else "in-memory", sync_on_close="all")
+        if fmt == "parquet" and streaming:
+            ordered.sink_parquet(tmp, engine="streaming", sync_on_close="all")
             data_cols = [c for c in ordered.collect_schema().names() if c not in (stamps or {})]
-            written = pl.scan_parquet(tmp).select(data_cols)
-            rows = written.select(pl.len()).collect().item()
-            digest = batches_digest(written.collect_schema(), written.collect_batches(engine="streaming"))
+            rows = 0
+            batches = pl.scan_parquet(tmp).select(data_cols).collect_batches(engine="streaming")
+
+            def counted():  # one pass over the file: count the rows while hashing them
+                nonlocal rows
+                for batch in batches:
+                    rows += batch.height
+                    yield batch
+
+            digest = batches_digest(pl.scan_parquet(tmp).select(data_cols).collect_schema(), counted())
         else:
             frame = ordered.collect(engine="streaming" if streaming else "in-memory")
             rows = frame.height
-            digest = frame_digest(frame, exclude=tuple(stamps or ()))
+            data = frame.drop([c for c in (stamps or {}) if c in frame.columns])
+            digest = batches_digest(data.schema, [data])  # already in canonical order
             with open(tmp, "wb") as fh:
-                frame.write_csv(fh)
+                if fmt == "parquet":
+                    frame.write_parquet(fh)
+                else:
+                    frame.write_csv(fh)
                 fh.flush()
                 os.fsync(fh.fileno())
+            kept = frame
     except OSError as exc:
         _unlink(tmp)
         raise OutputError(f"cannot write output {relative}: {exc.strerror or exc}") from None
@@ -125,7 +148,7 @@ def stage_file(root: Path, relative: str, result: pl.LazyFrame, fmt: str,
         _unlink(tmp)
         raise
     size = tmp.stat().st_size
-    return Staged(final, tmp, fmt, rows, digest, file_sha256(tmp), size, relative)
+    return Staged(final, tmp, fmt, rows, digest, file_sha256(tmp), size, relative, kept)
 
 
 def stage_frame_file(root: Path, relative: str, frame: pl.DataFrame) -> Staged:
