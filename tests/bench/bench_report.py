@@ -1,0 +1,273 @@
+"""Benchmark: `weir report` over 20 jobs x one year of hourly windows (175,200 windows).
+
+Run by hand (not collected by pytest):
+
+    python tests/bench/bench_report.py [--dir DIR] [--repeats N] [--no-browser]
+
+It writes a workspace of 20 invented bike-share jobs (4 reading a database
+table, 16 reading earlier jobs, in 5 layers), all hourly in Europe/Lisbon over
+2025, and a synthetic ledger straight through `runner.ledger` (SQLAlchemy
+Core): mostly done windows with fingerprints that match the job files, a few
+failed windows, two jobs whose March windows ran with older code (stale by
+code, and their readers stale by upstream), late inputs, windows never run and
+windows waiting for a failed producer, and one live claim. Then it times
+`build_report` (survey included) and `metrics_text`, reports the page's size,
+and loads it in headless Chromium over the DevTools protocol to time the load
+and a first click on a day. Results go to docs/performance.md by hand.
+"""
+
+from __future__ import annotations
+
+import argparse
+import gc
+import gzip
+import os
+import platform
+import random
+import subprocess
+import sys
+import tempfile
+import time
+from datetime import UTC, datetime
+from pathlib import Path
+
+import polars as pl
+import sqlalchemy as sa
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE.parent))  # the tests folder: the DevTools client lives in test_report.py
+
+from runner import fingerprint as fp  # noqa: E402
+from runner import ledger as ledger_mod  # noqa: E402
+from runner.execute import spec_and_code  # noqa: E402
+from runner.metrics import metrics_text  # noqa: E402
+from runner.planner import Snapshot, _upstream, assess_job  # noqa: E402
+from runner.report import build_report, collect, render, write_report  # noqa: E402
+from runner.workspace import load_workspace  # noqa: E402
+
+AT = datetime(2026, 1, 1, 0, 30, tzinfo=UTC)  # every window of 2025 (Lisbon) is due
+ROOTS = ["rides_riverside", "rides_old_town", "dock_moves", "fare_payments"]
+ERRORS = [
+    "check key [zone, fare] failed: 2 duplicate row(s); e.g. zone='harbour', fare='member'",
+    'input trips: column amount: value "-3.50" breaks rule min 0; fix the data or set on_bad_rows',
+    "step 1 (sql): Binder Error: column \"revenue\" not found; candidates: <rides>, <amount>",
+]
+
+
+def job_names() -> list[str]:
+    return ROOTS + [f"zone_rollup_{i:02d}" for i in range(16)]
+
+
+def write_jobs(root: Path) -> None:
+    (root / "jobs").mkdir(parents=True, exist_ok=True)
+    (root / "state").mkdir(exist_ok=True)
+    names = job_names()
+    window = "window: {every: 1h, start: 2025-01-01T00:00, timezone: Europe/Lisbon, settle: 10m}\n"
+    for name in ROOTS:
+        (root / "jobs" / f"{name}.yaml").write_text(
+            f"description: Hourly {name.replace('_', ' ')} per zone (invented bike-share).\n{window}"
+            "late_after: 1h\n"
+            "inputs:\n  trips: {database: 'sqlite:///state/source.sqlite', table: trips, time_column: started_at}\n"
+            "steps:\n  - sql: SELECT zone, COUNT(*) AS rides FROM trips GROUP BY zone\n"
+            f"output: {{path: 'state/warehouse/{name}/{{start:%Y/%m/%d/%H}}.parquet'}}\n")
+    for i in range(16):
+        name = names[4 + i]
+        producers = [names[i]] + ([names[i + 1]] if i % 3 == 0 else [])
+        inputs = "".join(f"  in_{k}: {{job: {p}}}\n" for k, p in enumerate(producers))
+        (root / "jobs" / f"{name}.yaml").write_text(
+            f"description: Rides per zone, layer {i // 4 + 1} of the invented rollups.\n{window}"
+            f"inputs:\n{inputs}"
+            "steps:\n  - sql: SELECT zone, SUM(rides) AS rides FROM in_0 GROUP BY zone\n"
+            f"output: {{path: 'state/warehouse/{name}/{{start:%Y/%m/%d/%H}}.parquet'}}\n")
+
+
+def utc_text_us(us: int) -> str:
+    return datetime.fromtimestamp(us / 1e6, UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def key_text(us: int) -> str:
+    return datetime.fromtimestamp(us / 1e6, UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def fill_ledger(root: Path, seed: int = 7) -> int:
+    """Write runs and window states for every due window; returns how many windows got a row."""
+    rng = random.Random(seed)
+    ws = load_workspace(root, thorough=False)
+    ledger = ledger_mod.Ledger(ledger_mod.default_url(root))
+    assessed: dict[str, pl.DataFrame] = {}
+    states: dict[str, pl.DataFrame] = {}
+    run_id = 0
+    written = 0
+    stale_jobs = {ROOTS[1], "zone_rollup_05"}
+    march = (datetime(2025, 3, 1, tzinfo=UTC), datetime(2025, 4, 1, tzinfo=UTC))
+    for name in ws.order:
+        cad = ws.cadence(name)
+        frame = cad.due(AT).frame()
+        spec_p, code_p = spec_and_code(ws, name)
+        snap = Snapshot(states=dict(states))
+        up = _upstream(ws, name, frame, snap, assessed)  # the planner's own upstream hash, so readers are current
+        frame = frame.join(up, on="window_key", how="left", maintain_order="left")
+        runs, wins = [], []
+        n = frame.height
+        for i, (wid, key, s_us, e_us, up_hash, ready) in enumerate(frame.select(
+                "window", "window_key", "start_us", "end_us", "up_hash", "up_ready").iter_rows()):
+            if not ready:
+                continue  # a producer window is not done: this one waits
+            if name == ROOTS[2] and i >= n - 5:
+                continue  # never ran: missing
+            if name.startswith("zone_rollup_1") and i >= n - 3:
+                continue
+            failed = rng.random() < 0.0015
+            code = code_p.hash
+            if name in stale_jobs and march[0].timestamp() * 1e6 <= s_us < march[1].timestamp() * 1e6:
+                code = "0" * len(code_p.hash)  # ran with older code
+            finished = e_us + 600_000_000 + rng.randrange(1_000_000, 90_000_000)
+            late = name in ROOTS and rng.random() < 0.01
+            ingested = utc_text_us(e_us + (7_200_000_000 if late else 180_000_000)) if name in ROOTS else None
+            seconds = round(rng.lognormvariate(-1.0, 0.6), 4)
+            rows = rng.randrange(20, 400)
+            digest = fp.digest(f"{name}:{key}:out")
+            parts = {"fp_spec": spec_p.hash, "fp_code": code, "fp_input": fp.digest(f"{name}:{key}:in"),
+                     "fp_upstream": up_hash}
+            fingerprint = fp.digest("".join(parts.values()))
+            run_id += 1
+            run = {"id": run_id, "job": name, "window_key": key, "window_end": key_text(e_us), "window_id": wid,
+                   "attempt": 1, "status": "failed" if failed else "done", "forced": False,
+                   "fingerprint": fingerprint, **parts, "started_at": utc_text_us(finished - int(seconds * 1e6)),
+                   "finished_at": utc_text_us(finished), "seconds": seconds, "step_seconds": seconds * 0.6,
+                   "rows_read": rows * 12, "rows_dropped": 0, "rows_rejected": 0,
+                   "rows_written": None if failed else rows,
+                   "output": None if failed else f"state/warehouse/{name}/{key}.parquet",
+                   "output_digest": None if failed else digest, "output_checksum": None,
+                   "error": rng.choice(ERRORS) if failed else None, "failed_check": None, "host": "bench",
+                   "pid": 1, "code_version": None, "weir_version": "bench", "ingested_at": ingested}
+            runs.append(run)
+            wins.append({"job": name, "window_key": key, "window_end": key_text(e_us), "window_id": wid,
+                         "state": run["status"], "run_id": run_id,
+                         "fingerprint": None if failed else fingerprint,
+                         **({k: None for k in parts} if failed else parts), "output": run["output"],
+                         "output_digest": run["output_digest"], "output_checksum": None,
+                         "last_fingerprint": fingerprint, "good_run_id": None if failed else run_id,
+                         "failures": 1 if failed else 0, "ingested_at": ingested,
+                         "finished_at": run["finished_at"], "seconds": seconds, "output_state": None})
+        with ledger.engine.begin() as conn:
+            for k in range(0, len(runs), 5000):
+                conn.execute(sa.insert(ledger_mod.runs), runs[k:k + 5000])
+                conn.execute(sa.insert(ledger_mod.windows), wins[k:k + 5000])
+        written += len(wins)
+        states[name] = ledger.states(name)
+        assessed[name] = assess_job(ws, name, AT, Snapshot(states=dict(states)), (spec_p.hash, code_p.hash),
+                                    None, False, assessed)
+    # one window being worked on right now (claims expire on the real clock)
+    last_key = assessed[ROOTS[0]]["window_key"][-1]
+    with ledger.engine.begin() as conn:
+        conn.execute(sa.insert(ledger_mod.claims).values(job=ROOTS[0], window_key=last_key, owner="bench:1:1",
+                                                         expires=time.time() + 7200))
+    ledger.dispose()
+    return written
+
+
+def best_of(fn, repeats: int):
+    best, result = float("inf"), None
+    for _ in range(repeats):
+        gc.collect()
+        t0 = time.perf_counter()
+        result = fn()
+        best = min(best, time.perf_counter() - t0)
+    return best, result
+
+
+def browser_load(page: Path, shot: Path, repeats: int) -> dict[str, float]:
+    from test_report import Browser  # the suite's DevTools client
+
+    with tempfile.TemporaryDirectory() as profile:
+        b = Browser(Path(profile) / "profile", width=1400, height=1000)
+        try:
+            loads, dcl, loaded = [], [], []
+            for _ in range(repeats):
+                t0 = time.perf_counter()
+                b.open(page)
+                loads.append(time.perf_counter() - t0)
+                nav = b.evaluate("(function(){var n=performance.getEntriesByType('navigation')[0];"
+                                 "return [n.domContentLoadedEventEnd, n.loadEventEnd];})()")
+                dcl.append(nav[0] / 1000)
+                loaded.append(nav[1] / 1000)
+            errors = b.errors()
+            click = b.evaluate("(function(){var t=performance.now(); weirReport.select(7, 40);"
+                               "var a=performance.now()-t; t=performance.now(); weirReport.select(7, 41);"
+                               "return [a, performance.now()-t];})()")
+            nodes = b.evaluate("document.getElementsByTagName('*').length")
+            heap = b.call("Runtime.getHeapUsage")
+            b.screenshot(shot)
+        finally:
+            b.close()
+    return {"wall": min(loads), "dcl": min(dcl), "load": min(loaded), "first_click": click[0] / 1000,
+            "next_click": click[1] / 1000, "nodes": nodes, "heap_mb": heap["usedSize"] / 2**20,
+            "errors": len(errors)}
+
+
+def machine() -> str:
+    cpu = next((line.split(":", 1)[1].strip() for line in Path("/proc/cpuinfo").read_text().splitlines()
+                if line.startswith("model name")), platform.processor()) if Path("/proc/cpuinfo").exists() else ""
+    try:
+        chrome = subprocess.run(["chromium", "--version"], capture_output=True, text=True, timeout=30).stdout.strip()
+    except (OSError, subprocess.TimeoutExpired):
+        chrome = "no chromium"
+    return (f"{datetime.now(UTC):%Y-%m-%d}, {os.cpu_count()} cores ({cpu}), {platform.machine()}, "
+            f"Python {platform.python_version()}, polars {pl.__version__}, SQLAlchemy {sa.__version__}, {chrome}")
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--dir", type=Path, help="workspace folder to (re)use; default: a temporary one")
+    ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--no-browser", action="store_true")
+    args = ap.parse_args()
+    tmp = None
+    if args.dir is None:
+        tmp = tempfile.TemporaryDirectory(prefix="weir-bench-report-")
+        root = Path(tmp.name)
+    else:
+        root = args.dir
+    ledger_file = root / "state" / "ledger.sqlite"
+    if not ledger_file.exists():
+        write_jobs(root)
+        t0 = time.perf_counter()
+        n = fill_ledger(root)
+        print(f"ledger: {n:,} window rows written in {time.perf_counter() - t0:.1f} s ({root})")
+    ws = load_workspace(root, thorough=False)
+    ledger = ledger_mod.Ledger(ledger_mod.default_url(root), create=False)
+    from runner.status import survey
+
+    t_survey, _ = best_of(lambda: survey(ws, ledger, AT, None), args.repeats)
+    t_collect, data = best_of(lambda: collect(ws, ledger, AT), args.repeats)
+    t_render, page = best_of(lambda: render(data), args.repeats)
+    t_build, page = best_of(lambda: build_report(ws, ledger, AT), args.repeats)
+    t_metrics, text = best_of(lambda: metrics_text(ws, ledger, AT), args.repeats)
+    t_metrics_reuse, _ = best_of(lambda: metrics_text(ws, ledger, AT, assessed=data.assessed), args.repeats)
+    out = write_report(root / "state" / "report.html", page)
+    size = out.stat().st_size
+    total = sum(v.total for v in data.jobs)
+    counts = {s: sum(v.counts[s] for v in data.jobs) for s in data.jobs[0].counts}
+    print(machine())
+    print(f"windows: {total:,} over {len(data.jobs)} jobs and {data.days} days; states {counts}; "
+          f"late {sum(v.late for v in data.jobs):,}")
+    print(f"build_report: {t_build:.2f} s (survey {t_survey:.2f} s; survey and shaping {t_collect:.2f} s; "
+          f"HTML {t_render:.2f} s), best of {args.repeats}; load average {os.getloadavg()[0]:.1f}")
+    print(f"metrics_text: {t_metrics:.2f} s with its own survey, {t_metrics_reuse:.3f} s reusing the report's; "
+          f"{len(text.encode()):,} bytes")
+    print(f"page: {size:,} bytes ({size / 2**20:.2f} MiB), gzip {len(gzip.compress(page.encode())):,} bytes; "
+          f"{out}")
+    if not args.no_browser:
+        b = browser_load(out, root / "state" / "report.png", args.repeats)
+        print(f"chromium: load {b['wall']:.2f} s wall (navigate to load event), DOMContentLoaded {b['dcl']:.2f} s, "
+              f"load event end {b['load']:.2f} s; first click on a day {b['first_click'] * 1000:.0f} ms, "
+              f"next {b['next_click'] * 1000:.0f} ms; {b['nodes']:,} elements; JS heap {b['heap_mb']:.0f} MB; "
+              f"console errors {b['errors']}")
+    ledger.dispose()
+    if tmp is not None:
+        tmp.cleanup()
+
+
+if __name__ == "__main__":
+    main()
