@@ -287,6 +287,7 @@ class TickResult:
 def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers: int | None = None,
          should_stop=None, on_outcome=None, ws: Workspace | None = None) -> TickResult:
     """Plan, then run what is due (oldest first, `max_catch_up` per job), one tick per workspace at a time."""
+    from runner import gate
     from runner.execute import RunContext
     from runner.ledger import HeldLock, owner_id
     from runner.planner import job_plans, tasks_for
@@ -303,11 +304,13 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
         with HeldLock(ledger, "tick", owner) as lock:
             if not lock.acquired:
                 return TickResult(ran=False, holder=lock.holder())
+            before = gate.ledger_stat(ws.root, ledger_url)  # this tick only reads it from here on
             assessed = _survey(ws, ledger, at, None)
             plans = job_plans(ws, assessed, cap=True)
             items = [i for p in plans for i in p.due]
-            if not items and not any(p.counts.get("running") for p in plans):
-                idle = assessed  # nothing due and nobody else mid-window: an idle tick may stop early
+            if (not items and not any(p.counts.get("running") for p in plans)
+                    and gate.ledger_stat(ws.root, ledger_url) == before):
+                idle = assessed  # nothing due, nobody mid-window, no write while planning: may stop early
             # waiting windows whose producers run in this tick go along; they run if those finish
             runnable = {(i.job, i.window.key) for i in items}
             for p in plans:
@@ -394,7 +397,12 @@ def why(root: Path | str, job: str, window_id: str, at: datetime, ledger_url: st
         if state["fp_code"] != code_now.hash:
             changes["code"] = explain.code_diff(ledger.text(state["fp_code"]), code_now.text)
         if state["fp_input"] != prep.parts["input"].hash:
-            changes["input"] = explain.input_changes(ledger.text(state["fp_input"]), prep.parts["input"].text)
+            # a database input's rows are read by a run only: absent from `prep`, not removed
+            tables = {n for n, s in ws.jobs[job].spec.inputs.items() if isinstance(s, DatabaseInput)}
+            found = [c for c in explain.input_changes(ledger.text(state["fp_input"]), prep.parts["input"].text)
+                     if c["input"] not in tables]
+            if found:
+                changes["input"] = found
         if state["fp_upstream"] != prep.parts["upstream"].hash:
             changes["upstream"] = explain.upstream_changes(ledger.text(state["fp_upstream"]),
                                                            prep.parts["upstream"].text)

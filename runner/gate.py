@@ -50,6 +50,26 @@ def sqlite_file(root: Path, ledger_url: str | None) -> str | None:
 
 def observe(root: Path, templates: list[str], modules: list[str], ledger_file: str) -> str:
     """A digest of everything besides the clock that a plan depends on."""
+    return _with_ledger(observe_files(root, templates, modules), ledger_file)
+
+
+def ledger_stat(root: Path, ledger_url: str | None) -> str | None:
+    """The SQLite ledger's files as stat sees them (None for other ledgers)."""
+    ledger_file = sqlite_file(root, ledger_url)
+    if ledger_file is None:
+        return None
+    return " ".join(str(_stat(ledger_file + suffix)) for suffix in ("", "-wal"))
+
+
+def _with_ledger(files: str, ledger_file: str) -> str:
+    h = hashlib.sha256(files.encode())
+    for suffix in ("", "-wal"):
+        h.update(f"ledger {suffix} {_stat(ledger_file + suffix)}\n".encode())
+    return h.hexdigest()
+
+
+def observe_files(root: Path, templates: list[str], modules: list[str]) -> str:
+    """A digest of the job files, python step modules and every file input's candidate files."""
     from runner import __version__
 
     h = hashlib.sha256(__version__.encode())
@@ -64,8 +84,6 @@ def observe(root: Path, templates: list[str], modules: list[str], ledger_file: s
         full = wild if os.path.isabs(wild) else os.path.join(root, wild)
         for path in sorted(glob.glob(full, recursive=True)):
             h.update(f"input {path} {_stat(path)}\n".encode())
-    for suffix in ("", "-wal"):
-        h.update(f"ledger {suffix} {_stat(ledger_file + suffix)}\n".encode())
     return h.hexdigest()
 
 
@@ -90,10 +108,18 @@ def fresh(root: Path, at: datetime, ledger_url: str | None) -> datetime | None |
 
 
 def write(root: Path, ledger_url: str | None, templates: list[str], modules: list[str],
-          wake_at: datetime | None) -> None:
-    """Record that nothing is due until `wake_at` given what is observed now."""
+          wake_at: datetime | None, seen: str | None = None) -> None:
+    """Record that nothing is due until `wake_at` given what is observed now.
+
+    `seen` is `observe_files` taken before the tick planned: when the files differ now
+    (a file landed or a job changed while it planned), no gate is written.
+    """
     ledger_file = sqlite_file(root, ledger_url)
     if ledger_file is None:
+        return
+    files = observe_files(root, templates, modules)
+    if seen is not None and files != seen:
+        clear(root)
         return
     record: dict[str, Any] = {
         "version": 1,
@@ -103,7 +129,7 @@ def write(root: Path, ledger_url: str | None, templates: list[str], modules: lis
         "modules": modules,
         "written_at": datetime.now(UTC).isoformat(),
     }
-    record["observed"] = observe(root, templates, modules, ledger_file)
+    record["observed"] = _with_ledger(files, ledger_file)
     path = root / GATE
     tmp = path.with_name(f".{path.name}.{os.getpid()}")
     try:

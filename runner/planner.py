@@ -529,7 +529,10 @@ def next_change(ws: Workspace, assessed: dict[str, pl.DataFrame], at: datetime) 
     for name in ws.jobs:
         cad = ws.cadence(name)
         limit = at - cad.settle
-        current = cad.window_at(limit) if limit >= cad.start else cad.first()
+        current = cad.window_at(limit) if limit >= cad.start else None
+        if current is None:  # before the first window (a cron job's first fire may come after its start)
+            first = cad.first()
+            current = first if first is not None and first.start > limit else None
         if current is not None:
             candidates.append(current.end + cad.settle)
     for frame in assessed.values():

@@ -42,9 +42,11 @@ class InputProber:
         entries: list[dict[str, Any]] = []
         newest = None
         waiting = None
+        tables = False
         for name, source in spec.inputs.items():
             if isinstance(source, DatabaseInput):
-                return Probe(None, None, None)
+                tables = True  # its rows are read by a run only: the input hash is unknown here
+                continue
             if not isinstance(source, FileInput):
                 continue
             key = (job, name)
@@ -56,7 +58,7 @@ class InputProber:
                 newest = max(newest or 0, found.newest_mtime_ns)
             if not found.paths and source.required and waiting is None:
                 waiting = f"input {name}: no files match {', '.join(found.patterns[:2])}"
-        return Probe(fp.input_part(entries).hash, newest, waiting)
+        return Probe(None if tables else fp.input_part(entries).hash, newest, waiting)
 
 
 def closure(ws: Workspace, jobs: list[str]) -> list[str]:
