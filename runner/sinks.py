@@ -212,6 +212,8 @@ def write_table(url: str, table: str, frame: pl.DataFrame, window_key: str) -> t
         frame = frame.sort(keys, nulls_last=True, maintain_order=True)
     if "window_start" in frame.columns:
         raise OutputError("a table output may not have its own window_start column (weir keys rows by it)")
+    if url.startswith("sqlite:///") and ":memory:" not in url:
+        Path(url[len("sqlite:///"):]).parent.mkdir(parents=True, exist_ok=True)
     engine = sa.create_engine(url)
     try:
         with engine.begin() as conn:

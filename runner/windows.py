@@ -221,8 +221,12 @@ class Cadence:
         """Windows (from `lo`, default the first) whose end is at or before `instant`."""
         last = self.window_at(instant - timedelta(microseconds=1))
         if last is None:
-            if self.end is not None and instant > self.end:
-                return self.span(lo, self.end)  # past the job's end: every window
+            if self.end is not None and instant > self.start:
+                # past the last window that fits before the job's end (or past the end itself):
+                # every window of the range that has ended by now
+                every = self.span(lo, self.end)
+                ended = every.ends_us <= to_us(instant)
+                return WindowSpan(every.starts_us.filter(ended), every.ends_us.filter(ended), self.tz)
             return self.span(self.start, self.start)  # before the first window ends
         hi = last.start if last.end > instant else last.end
         if lo is not None and hi < lo:

@@ -706,3 +706,17 @@ def test_corrupt_ledger_file_gives_one_line_and_is_left_untouched(rides_ws: Path
         assert "ledger" in line and str(ledger_path(rides_ws)) in line
     assert ledger_path(rides_ws).read_bytes() == garbage
     assert not (rides_ws / HOURLY_DIR).exists()
+
+
+def test_a_table_output_in_a_sqlite_file_whose_folder_does_not_exist_yet_is_written(tmp_path: Path):
+    job = rollup_job(table="rides_per_hour").replace("sqlite:///state/out.sqlite",
+                                                     "sqlite:///state/new/folder/out.sqlite")
+    root = write_workspace(tmp_path / "ws", {"rides_table": job})
+    write_rides(root, DAY)
+    assert not (root / "state" / "new").exists()
+    assert statuses(backfill(root, "rides_table", lo=LO, hi=HI)) == {"done": 24}
+    # sqlite3 (the standard library) as an independent reader of the written table
+    con = sqlite3.connect(root / "state" / "new" / "folder" / "out.sqlite")
+    hours_with_rides = {w for w, _, _ in duckdb_hourly([rides_file(root, DAY)])}  # reference: DuckDB
+    assert con.execute("SELECT COUNT(DISTINCT window_start) FROM rides_per_hour").fetchone()[0] == len(
+        hours_with_rides)
