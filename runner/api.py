@@ -366,7 +366,9 @@ def why(root: Path | str, job: str, window_id: str, at: datetime, ledger_url: st
     if window.end + cad.settle > at:
         out.update(state="not due", reason=f"due at {format_instant(window.end + cad.settle, cad.tz)}")
         return out
-    assessed = _survey(ws, ledger, at, [job], recheck_all=True)[job]
+    from runner.status import survey
+
+    assessed = survey(ws, ledger, at, [job], recheck_all=True, extras=True)[job]
     row = assessed.filter(pl.col("window_key") == window.key).row(0, named=True)
     out.update(state=row["state"], reason=row["reason"], reasons=row["reasons"], pending_upstream=row["pending"])
     state = ledger.state_row(job, window.key)

@@ -31,6 +31,7 @@ class FileIndex:
     template: str
     folders: dict[str, list[tuple[str, int, int]]] = field(default_factory=dict)
     listed: bool = False
+    by_name: dict[str, dict[str, tuple[int, int]]] = field(default_factory=dict)
 
     @classmethod
     def build(cls, root: Path, template: str) -> FileIndex:
@@ -60,9 +61,14 @@ class FileIndex:
                     st = os.stat(path)
                     out.append((path, st.st_size, st.st_mtime_ns))
             return out
-        entries = self.folders.get(os.path.normpath(folder)) or self.folders.get(folder) or []
+        key = os.path.normpath(folder)
+        entries = self.folders.get(key) or self.folders.get(folder) or []
         if not glob.has_magic(name):
-            return [(os.path.join(folder, n), s, m) for n, s, m in entries if n == name]
+            names = self.by_name.get(key)
+            if names is None:
+                names = self.by_name[key] = {n: (s, m) for n, s, m in entries}
+            hit = names.get(name)
+            return [(os.path.join(folder, name), *hit)] if hit else []
         return [(os.path.join(folder, n), s, m) for n, s, m in entries
                 if fnmatch.fnmatchcase(n, name) and not (n.startswith(".") and not name.startswith("."))]
 
@@ -87,7 +93,14 @@ def listing(root: Path, patterns: list[str], index: FileIndex | None = None) -> 
 
 
 def relative(root: Path, path: str) -> str:
-    """Workspace-relative POSIX path when inside the workspace, else the absolute path."""
+    """Workspace-relative POSIX path when inside the workspace, else the absolute path.
+
+    Paths found under the (already resolved) workspace root are cut by prefix;
+    anything else is resolved first.
+    """
+    prefix = str(root) + os.sep
+    if path.startswith(prefix) and ".." not in path:
+        return path[len(prefix):].replace(os.sep, "/")
     try:
         return Path(path).resolve().relative_to(root.resolve()).as_posix()
     except ValueError:

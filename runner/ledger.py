@@ -391,6 +391,77 @@ class Ledger:
             rows = conn.execute(q).all()
         return pl.DataFrame([tuple(r) for r in rows], schema=schema, orient="row")
 
+    def plan_states(self, job: str, spec_hash: str, code_hash: str, input_from: str | None = None,
+                    upstream: bool = False, digests: bool = False, ingested: bool = False,
+                    extras: bool = False) -> pl.DataFrame:
+        """The window states planning needs, compactly: one query over every window of `job`
+        and one over its failed (or flagged) windows.
+
+        The state and the comparisons with the job-wide spec and code hashes come
+        back as one small integer (so a year of windows does not bring back a year
+        of identical hash strings); `fp_input` only for windows keyed at or after
+        `input_from` (all when None) and windows not done. Columns: window_key,
+        state, spec_ok, code_ok, fp_input, failures, finished_at, last_fingerprint,
+        output_state, run_id; optionally fp_upstream, output_digest (`digests`),
+        ingested_at, and output, seconds (`extras`).
+        """
+        import polars as pl
+
+        c = windows.c
+        not_done = c.state != "done"
+        flags = (sa.case((c.state == "done", 1), (c.state == "failed", 2), else_=3)
+                 + sa.case((c.fp_spec == spec_hash, 4), else_=0) + sa.case((c.fp_code == code_hash, 8), else_=0)
+                 + sa.case((c.output_state.is_(None), 0), else_=16))
+        columns: list[tuple[str, Any, Any]] = [
+            ("window_key", c.window_key, pl.String), ("flags", flags, pl.Int64),
+            ("fp_input", c.fp_input if input_from is None else
+             sa.case((sa.or_(c.window_key >= input_from, not_done), c.fp_input), else_=None), pl.String),
+        ]
+        if upstream:
+            columns.append(("fp_upstream", c.fp_upstream, pl.String))
+        if digests:
+            columns.append(("output_digest", c.output_digest, pl.String))
+        if ingested or extras:
+            columns.append(("ingested_at", c.ingested_at, pl.String))
+        if extras:
+            columns += [("output", c.output, pl.String), ("seconds", c.seconds, pl.Float64)]
+        detail_columns: list[tuple[str, Any, Any]] = [
+            ("window_key", c.window_key, pl.String), ("failures", c.failures, pl.Int64),
+            ("finished_at", c.finished_at, pl.String), ("last_fingerprint", c.last_fingerprint, pl.String),
+            ("output_state", c.output_state, pl.String),
+        ]
+        if self.engine is None:
+            main = _frame([], columns)
+            details = _frame([], detail_columns)
+        else:
+            with self._tx(read=True) as conn:
+                # the DBAPI rows as they come: no per-row objects beyond the driver's tuples
+                rows = conn.execute(sa.select(*[e.label(n) for n, e, _ in columns])
+                                    .where(c.job == job)).cursor.fetchall()
+                few = conn.execute(sa.select(*[e.label(n) for n, e, _ in detail_columns]).where(
+                    c.job == job, sa.or_(c.state == "failed", c.output_state.is_not(None)))).cursor.fetchall()
+            main, details = _frame(rows, columns), _frame(few, detail_columns)
+        code = pl.col("flags") % 4
+        main = main.with_columns(
+            pl.when(code == 1).then(pl.lit("done")).when(code == 2).then(pl.lit("failed"))
+            .otherwise(pl.lit("other")).alias("state"),
+            ((pl.col("flags") // 4) % 2 == 1).alias("spec_ok"),
+            ((pl.col("flags") // 8) % 2 == 1).alias("code_ok"),
+        ).drop("flags")
+        if extras:
+            runs = (self._run_ids(job) if self.engine is not None else
+                    _frame([], [("window_key", None, pl.String), ("run_id", None, pl.Int64)]))
+            main = main.join(runs, on="window_key", how="left")
+        return main.join(details, on="window_key", how="left").with_columns(pl.col("failures").fill_null(0))
+
+    def _run_ids(self, job: str) -> pl.DataFrame:
+        c = windows.c
+        with self._tx(read=True) as conn:
+            rows = conn.execute(sa.select(c.window_key, c.run_id).where(c.job == job)).cursor.fetchall()
+        import polars as pl
+
+        return _frame(rows, [("window_key", None, pl.String), ("run_id", None, pl.Int64)])
+
     def state_rows(self, job: str, keys: Iterable[str]) -> dict[str, dict[str, Any]]:
         """Window states by key for the given keys of one job (one range query)."""
         keys = list(keys)
@@ -487,6 +558,15 @@ def _gone(owner: str) -> bool:
     except OSError:
         return False  # it exists (perhaps another user's process)
     return False
+
+
+def _frame(rows: list[tuple], columns: list[tuple[str, Any, Any]]) -> pl.DataFrame:
+    """A frame built column by column from DBAPI row tuples."""
+    import polars as pl
+
+    values = list(zip(*rows, strict=True)) if rows else [() for _ in columns]
+    return pl.DataFrame([pl.Series(name, vals, dtype=dtype)
+                         for (name, _, dtype), vals in zip(columns, values, strict=True)])
 
 
 def _state_schema() -> dict[str, Any]:

@@ -88,7 +88,7 @@ def metrics_text(ws: Workspace, ledger: Ledger, at: datetime, assessed: dict[str
     from runner.status import survey
 
     if assessed is None:
-        assessed = survey(ws, ledger, at, None)
+        assessed = survey(ws, ledger, at, None, extras=True)
     plans = {p.job: p for p in job_plans(ws, assessed, cap=False)}
     newest = ledger.newest_runs()
     windows = _Family("weir_windows", "Due windows of a job by state at the report's clock.")

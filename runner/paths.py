@@ -11,7 +11,7 @@ import re
 import string
 from datetime import timedelta
 from itertools import islice
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
     from runner.windows import Window, WindowSpan
@@ -29,6 +29,43 @@ _STEP_CODES = [  # finest strftime code in a template -> the step that changes i
 def render(template: str, window: Window) -> str:
     """The template for one window, with its bounds in the job's local time."""
     return template.format(start=window.local_start, end=window.local_end)
+
+
+_SAFE_CODES = re.compile(r"^(?:[^%]|%[YmdHMSjyz%])*$")
+
+
+def render_many(template: str, starts_us: Any, ends_us: Any, tz: str) -> Any | None:
+    """Renderings of a template for many windows at once (a polars Series), or None.
+
+    None when the vectorized form might differ from `render` (strftime codes
+    outside a small safe set) or when one window may need several renderings
+    (`expand`: a `{start}`-only template whose finest code steps faster than
+    the windows are long).
+    """
+    import polars as pl
+
+    parsed = list(string.Formatter().parse(template))
+    fields = [(f, spec or "") for _, f, spec, _ in parsed if f is not None]
+    if any(f.split(".")[0] not in ("start", "end") or not _SAFE_CODES.match(spec) or not spec
+           for f, spec in fields):
+        return None
+    if not uses_end(template):
+        step = _finest_step(template)
+        longest = int((ends_us - starts_us).max() or 0) if len(starts_us) else 0
+        if step is not None and longest > step.total_seconds() * 1_000_000:
+            return None
+    local = {
+        "start": pl.from_epoch(starts_us, time_unit="us").dt.replace_time_zone("UTC").dt.convert_time_zone(tz),
+        "end": pl.from_epoch(ends_us, time_unit="us").dt.replace_time_zone("UTC").dt.convert_time_zone(tz),
+    }
+    frame = pl.DataFrame(local)
+    parts = []
+    for literal, f, spec, _ in parsed:
+        if literal:
+            parts.append(pl.lit(literal.replace("{{", "{").replace("}}", "}")))
+        if f is not None:
+            parts.append(pl.col(f).dt.strftime(spec))
+    return frame.select(pl.concat_str(parts).alias("pattern")).to_series()
 
 
 def uses_end(template: str) -> bool:

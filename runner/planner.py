@@ -239,16 +239,18 @@ def _upstream(ws: Workspace, job: str, frame: pl.DataFrame, snapshot: Snapshot,
         pl.col("up_ready").fill_null(True),
         pl.col("up_current").fill_null(True),
     )
-    waiting = [
-        None if ready or key is None else
-        f"waiting for {'itself' if pj == job else pj}: {n} of {c} producer window(s) not done "
-        f"(first {format_instant(parse_utc(key), ws.cadence(pj).tz)})"
-        for ready, key, pj, n, c in zip(out["up_ready"].to_list(), out["first_missing"].to_list(),
-                                        out["first_missing_job"].to_list(), out["missing_count"].to_list(),
-                                        out["count"].to_list(), strict=True)
-    ]
-    return out.select("window_key", "up_hash", "up_ready", "up_current",
-                      pl.Series("up_waiting", waiting, dtype=pl.String))
+    # messages only for the windows that wait (few), not a Python loop over every window
+    blocked = out.filter(~pl.col("up_ready") & pl.col("first_missing").is_not_null())
+    waiting = {
+        key: f"waiting for {'itself' if pj == job else pj}: {n} of {c} producer window(s) not done "
+             f"(first {format_instant(parse_utc(first), ws.cadence(pj).tz)})"
+        for key, first, pj, n, c in blocked.select("window_key", "first_missing", "first_missing_job",
+                                                   "missing_count", "count").iter_rows()
+    }
+    messages = pl.DataFrame({"window_key": list(waiting), "up_waiting": list(waiting.values())},
+                            schema={"window_key": pl.String, "up_waiting": pl.String})
+    return out.select("window_key", "up_hash", "up_ready", "up_current").join(
+        messages, on="window_key", how="left", maintain_order="left")
 
 
 def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, now_parts: tuple[str, str],
@@ -267,13 +269,12 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, now_pa
     span = cad.due(at)
     frame = span.frame()
     states = snapshot.states.get(job)
-    if states is None or states.height == 0:
-        from runner.ledger import _state_schema
-
-        states = pl.DataFrame(schema=_state_schema())
-    frame = frame.join(states.drop("job", "window_id", "window_end", strict=False), on="window_key", how="left")
+    if states is not None and states.height:
+        frame = frame.join(states, on="window_key", how="left")
+    for name, dtype in _state_columns().items():  # columns a snapshot may leave out
+        if name not in frame.columns:
+            frame = frame.with_columns(pl.lit(None, dtype=dtype).alias(name))
     frame = frame.with_columns(pl.col("failures").fill_null(0))
-    spec_now, code_now = now_parts
     up = _upstream(ws, job, frame, snapshot, assessed)
     frame = frame.join(up, on="window_key", how="left")
     # inputs: probed where cheap enough to matter
@@ -289,11 +290,14 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, now_pa
         mask = frame.with_columns(need.alias("_need"))["_need"].to_list()
         starts = frame["start_us"].to_list()
         ends = frame["end_us"].to_list()
-        for i, wanted in enumerate(mask):
-            if wanted:
-                result = probe(job, Window(from_us(starts[i]), from_us(ends[i]), cad.tz))
-                probed_hash[i], newest[i], probed_wait[i] = (
-                    result.input_hash, result.newest_mtime_ns, result.waiting)
+        rows = [i for i, wanted in enumerate(mask) if wanted]
+        many = getattr(probe, "many", None)
+        if many is not None:  # a batch of windows as arrays: no Window object per window
+            results = many(job, cad.tz, [starts[i] for i in rows], [ends[i] for i in rows])
+        else:
+            results = [probe(job, Window(from_us(starts[i]), from_us(ends[i]), cad.tz)) for i in rows]
+        for i, result in zip(rows, results, strict=True):
+            probed_hash[i], newest[i], probed_wait[i] = (result.input_hash, result.newest_mtime_ns, result.waiting)
     frame = frame.with_columns(
         pl.Series("in_hash", probed_hash, dtype=pl.String),
         pl.Series("in_waiting", probed_wait, dtype=pl.String),
@@ -302,10 +306,11 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, now_pa
             pl.Series([k for j, k in snapshot.claims if j == job], dtype=pl.String).implode()))
         .alias("running"),
     )
+    frame = frame.lazy()  # from here on one query, collected once at the end
     done = pl.col("state") == "done"
     changed = [
-        pl.when(done & (pl.col("fp_spec") != spec_now)).then(pl.lit("spec")),
-        pl.when(done & (pl.col("fp_code") != code_now)).then(pl.lit("code")),
+        pl.when(done & ~pl.col("spec_ok")).then(pl.lit("spec")),
+        pl.when(done & ~pl.col("code_ok")).then(pl.lit("code")),
         pl.when(done & pl.col("in_hash").is_not_null() & (pl.col("fp_input") != pl.col("in_hash")))
         .then(pl.lit("input")),
         pl.when(done & (pl.col("fp_upstream") != pl.col("up_hash")) & pl.col("up_ready")).then(pl.lit("upstream")),
@@ -326,18 +331,14 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, now_pa
         .otherwise(pl.col("reasons")).alias("reasons"))
     # failed windows: retries left, backoff elapsed, or changed since the failure
     retries = spec.retries
-    delay_s = spec.retry_delay.total_seconds()
-    at_text = at.strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+    delay_us = int(spec.retry_delay.total_seconds() * 1_000_000)
+    power = (pl.col("failures") - 1).clip(0, 30)
+    retry_at = (pl.col("finished_at").str.to_datetime("%Y-%m-%dT%H:%M:%S%.fZ", time_unit="us", time_zone="UTC",
+                                                      strict=False)
+                + pl.duration(microseconds=pl.lit(delay_us, dtype=pl.Int64) * pl.lit(2, dtype=pl.Int64).pow(power)))
     frame = frame.with_columns(
-        ((pl.col("failures") - 1).clip(0, 30)).alias("_backoff_power"),
-    )
-    backoff_until = [
-        None if f is None or not fa else
-        (parse_run_time(f) + timedelta(seconds=delay_s * (2 ** p))).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
-        for f, fa, p in zip(frame["finished_at"].to_list(), frame["failures"].to_list(),
-                            frame["_backoff_power"].to_list(), strict=True)
-    ]
-    frame = frame.with_columns(pl.Series("retry_at", backoff_until, dtype=pl.String))
+        pl.when(pl.col("failures") > 0).then(retry_at).alias("_retry_at"),
+    ).with_columns(pl.col("_retry_at").dt.strftime("%Y-%m-%dT%H:%M:%S%.6fZ").alias("retry_at"))
     late_after = spec.late_after
     if late_after is not None:
         late_us = int(late_after.total_seconds() * 1_000_000)
@@ -359,7 +360,7 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, now_pa
     )
     frame = frame.with_columns(state.alias("state_now"))
     retry_left = pl.col("failures") <= retries
-    backoff_ok = pl.col("retry_at").is_null() | (pl.col("retry_at") <= pl.lit(at_text))
+    backoff_ok = pl.col("_retry_at").is_null() | (pl.col("_retry_at") <= pl.lit(at))
     failed_due = (pl.col("state_now") == "failed") & pl.col("in_waiting").is_null() & pl.col("up_ready") & (
         retry_left & backoff_ok)
     due = (pl.col("state_now") == "missing") | failed_due | (
@@ -387,7 +388,19 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, now_pa
         "due", "late", "failures", "seconds", "ingested_at", "reason", "output", "output_digest", "run_id",
         "in_newest", pl.when((pl.col("state_now") == "failed") & retry_left).then(pl.col("retry_at"))
         .alias("retry_at"),
-    )
+    ).collect()
+
+
+def _state_columns() -> dict[str, Any]:
+    """The window-state columns the assessment reads, with their types (a snapshot may omit some)."""
+    import polars as pl
+
+    return {
+        "state": pl.String, "failures": pl.Int64, "run_id": pl.Int64, "output_state": pl.String,
+        "spec_ok": pl.Boolean, "code_ok": pl.Boolean, "fp_input": pl.String, "fp_upstream": pl.String,
+        "finished_at": pl.String, "last_fingerprint": pl.String, "output_digest": pl.String,
+        "ingested_at": pl.String, "output": pl.String, "seconds": pl.Float64,
+    }
 
 
 def parse_run_time(text: str) -> datetime:

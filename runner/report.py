@@ -235,7 +235,7 @@ def collect(ws: Workspace, ledger: Ledger, at: datetime) -> ReportData:
     from runner.planner import job_plans, next_change
     from runner.status import survey
 
-    assessed = survey(ws, ledger, at, None)
+    assessed = survey(ws, ledger, at, None, extras=True)
     plans = {p.job: p for p in job_plans(ws, assessed, cap=True)}
     zone, zone_note = axis_zone(ws)
     at_day = at.astimezone(zone).date()

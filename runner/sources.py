@@ -55,9 +55,16 @@ def find_files(root: Path, name: str, source: FileInput, window: Window, index: 
     `index` (a `fileindex.FileIndex` of this input) answers from one listing
     made beforehand instead of globbing again.
     """
-    from runner.fileindex import manifest, window_files
+    from runner.paths import expand
 
-    patterns, files = window_files(root, source.files, window, index)
+    return files_for_patterns(root, name, source, expand(source.files, window), index)
+
+
+def files_for_patterns(root: Path, name: str, source: FileInput, patterns: list[str], index: Any = None) -> FileSet:
+    """The files of one input matching already rendered `patterns`."""
+    from runner.fileindex import listing, manifest
+
+    files = listing(root, patterns, index)
     entries = manifest(root, name, files, source.fingerprint == "content")
     newest = max((m for _, _, m in files), default=None)
     return FileSet(name, patterns, [p for p, _, _ in files], entries, newest)
@@ -98,25 +105,164 @@ class InputStats:
     rows_rejected: int = 0
     counted: bool = False
     rejected: list[pl.DataFrame] = field(default_factory=list)
-    limits: dict[str, tuple[int | None, float | None, int]] = field(default_factory=dict)
+    limits: dict[str, tuple[int | None, float | None]] = field(default_factory=dict)
+    judged: dict[str, list[int]] = field(default_factory=dict)  # input -> [rows in the window, bad rows]
     lock: threading.Lock = field(default_factory=threading.Lock)
 
+    def tally(self, name: str, read: int, dropped: int, rejected: int) -> int:
+        """Add one batch's figures; return the input's bad rows so far."""
+        with self.lock:
+            self.rows_read += read
+            self.rows_dropped += dropped
+            self.rows_rejected += rejected
+            seen = self.judged.setdefault(name, [0, 0])
+            seen[0] += read - dropped
+            seen[1] += rejected
+            return seen[1]
+
     def check_fractions(self) -> None:
-        """After the run: fail when bad rows exceed an input's `max_bad_fraction`."""
-        for name, (_, fraction, rejected) in self.limits.items():
-            if fraction is not None and self.rows_read and rejected / self.rows_read > fraction:
-                raise BadRows(f"input {name}: {rejected} bad row(s) of {self.rows_read} "
-                              f"({rejected / self.rows_read:.2%}) exceed max_bad_fraction {fraction:.2%}")
+        """After the run: fail when an input's bad rows exceed its `max_bad_fraction` of the
+        rows it had inside the window."""
+        for name, (rows, bad) in self.judged.items():
+            fraction = self.limits.get(name, (None, None))[1]
+            if fraction is not None and rows and bad / rows > fraction:
+                raise BadRows(f"input {name}: {bad} bad row(s) of {rows} ({bad / rows:.2%}) exceed "
+                              f"max_bad_fraction {fraction:.2%}")
+
+
+# Positions order the rows of one input across its files: file number * 2**40 + row number.
+POSITION = "__weir_position"
+_FILE_SHIFT = 1 << 40
+_FIRST, _LAST, _COPIES, _REPEAT = "__weir_first", "__weir_last", "__weir_copies", "__weir_repeat"
+
+
+def window_filter(columns: dict[str, Column], time_column: str | None, window: Window, job_tz: str
+                  ) -> pl.Expr | None:
+    """True on rows whose typed time column lies in the window (null where it did not read)."""
+    import polars as pl
+
+    from runner.checks import TYPED
+    from runner.coltypes import polars_dtype
+
+    if not time_column:
+        return None
+    dtype = polars_dtype(columns[time_column].type)
+    t = pl.col(TYPED + time_column)
+    if isinstance(dtype, pl.Date):
+        t = t.cast(pl.Datetime("us"))
+        dtype = pl.Datetime("us")
+    if dtype.time_zone is None:
+        t = t.dt.replace_time_zone(job_tz, ambiguous="earliest", non_existent="null")
+    t = t.dt.convert_time_zone("UTC")
+    return (t >= pl.lit(window.start)) & (t < pl.lit(window.end))
+
+
+def _key_exprs(key: list[str], columns: dict[str, Column]) -> list[pl.Expr]:
+    """The key columns as compared: declared ones typed, undeclared ones as read."""
+    import polars as pl
+
+    from runner.checks import TYPED
+
+    return [pl.col(TYPED + k if k in columns else k).alias(f"__weir_key{i}") for i, k in enumerate(key)]
+
+
+def key_frame(lf: pl.LazyFrame, number: int, key: list[str], columns: dict[str, Column], raw_schema: pl.Schema,
+              time_column: str | None, window: Window, job_tz: str,
+              samples: dict[str, pl.Series] | None = None) -> pl.LazyFrame:
+    """One file's key columns (typed) and row positions, restricted to the window, read lazily."""
+    import polars as pl
+
+    from runner.checks import apply_fast, cast_frame, plan_casts, settle
+
+    wanted = list(dict.fromkeys([*key, *([time_column] if time_column else [])]))
+    declared = {c: columns[c] for c in wanted if c in columns}
+    plan = plan_casts(declared, raw_schema, job_tz, samples)
+    inside = window_filter(columns, time_column, window, job_tz)
+    keys = _key_exprs(key, columns)
+    position = (pl.col(ROW).cast(pl.Int64) + number * _FILE_SHIFT).alias(POSITION)
+
+    def batch(frame: pl.DataFrame) -> pl.DataFrame:
+        frame = settle(frame, plan)
+        if inside is not None:
+            frame = frame.filter(inside.fill_null(True))
+        return frame.select(*keys, position)
+
+    probe = cast_frame(pl.DataFrame(schema={c: raw_schema[c] for c in [ROW, *wanted]}), plan).select(*keys, position)
+    return apply_fast(lf.select(ROW, *wanted), plan).map_batches(batch, schema=probe.schema, streamable=True,
+                                                                  validate_output_schema=False)
+
+
+def repeated_keys(frames: list[pl.LazyFrame], size: int) -> pl.DataFrame:
+    """Key values seen more than once across `frames` (from `key_frame`), with the positions
+    of their first and last rows and how many rows have them.
+
+    Rows with a null in the key are not compared (as a SQL UNIQUE constraint treats nulls:
+    ISO/IEC 9075). The first pass counts a 64-bit hash of each key, so its memory grows with
+    the number of distinct keys in the window (about 20 bytes each: 10 million distinct ride
+    ids raised a run's peak by 150-200 MB), whatever the keys' width and the other columns. Only when some hash repeats (a repeated key, or rarely two
+    keys with one hash) does a second pass read the key columns again and compare the
+    values themselves, for the rows with those hashes only.
+    """
+    import polars as pl
+
+    keys = [f"__weir_key{i}" for i in range(size)]
+    everything = (frames[0] if len(frames) == 1 else pl.concat(frames)).drop_nulls(keys)
+    digest = pl.struct(keys).hash().alias("__weir_hash")
+    twice = (everything.select(digest).group_by("__weir_hash").agg(pl.len().alias(_COPIES))
+             .filter(pl.col(_COPIES) > 1).collect(engine="streaming"))["__weir_hash"]
+    if twice.is_empty():
+        schema = everything.collect_schema()
+        return pl.DataFrame(schema={**{k: schema[k] for k in keys}, _COPIES: pl.UInt32, _FIRST: pl.Int64,
+                                    _LAST: pl.Int64})
+    return (everything.filter(pl.struct(keys).hash().is_in(twice.implode())).group_by(keys)
+            .agg(pl.len().alias(_COPIES), pl.col(POSITION).min().alias(_FIRST), pl.col(POSITION).max().alias(_LAST))
+            .filter(pl.col(_COPIES) > 1).sort(_FIRST).collect(engine="streaming"))
+
+
+def _where(labels: list[str], position: int) -> str:
+    return f"{labels[position // _FILE_SHIFT]} row {position % _FILE_SHIFT + 1}"
+
+
+def key_problem(name: str, key: list[str], repeats: pl.DataFrame, labels: list[str]) -> BadRows:
+    """The error for repeated keys under `on_bad_rows: fail`, naming values and rows."""
+    examples = []
+    for row in repeats.head(5).iter_rows(named=True):
+        values = ", ".join(f"{k}={row[f'__weir_key{i}']!r}" for i, k in enumerate(key))
+        examples.append(f"{values} {row[_COPIES]} times (first {_where(labels, row[_FIRST])}, "
+                        f"last {_where(labels, row[_LAST])})")
+    total = int(repeats[_COPIES].sum())
+    return BadRows(f"input {name}: key ({', '.join(key)}) repeated: {repeats.height} value(s) on {total} rows; "
+                   f"e.g. {'; '.join(examples)}; fix the data or set on_bad_rows: quarantine or drop")
+
+
+BAD, INSIDE = "__weir_bad", "__weir_inside"
 
 
 class BatchInspector:
-    """Called on every batch of one file: count, keep the window, cast, check, split bad rows."""
+    """Checks the batches of one file: count, keep the window, cast, judge, split bad rows.
+
+    The work is in two parts. `stage` adds native expressions to the scan:
+    the fast casts, a flag on rows that may break a rule and a flag on rows
+    inside the window; polars runs them in its streaming engine on every
+    core. Calling the inspector on a staged batch (inside `map_batches`) then
+    reads the flagged rows again with the complete casts (`settle`), judges
+    them, applies the window, the key and the limits, and sets the bad rows
+    aside. In the common case no row is flagged and that second part is a
+    few vectorized operations per batch.
+
+    `repeats` (from `repeated_keys`) lists the key values seen more than once in
+    the window; rows holding one of them, other than its first row, break the
+    key rule. `number` is the file's place among the input's files. `samples`
+    (a few hundred values of text timestamp columns) pick the fast casts.
+    """
 
     def __init__(self, name: str, label: str, source: FileInput | DatabaseInput, columns: dict[str, Column],
-                 raw_schema: pl.Schema, window: Window, job_tz: str, stats: InputStats):
+                 raw_schema: pl.Schema, window: Window, job_tz: str, stats: InputStats,
+                 repeats: pl.DataFrame | None = None, number: int = 0,
+                 samples: dict[str, pl.Series] | None = None):
         import polars as pl
 
-        from runner.checks import cast_expr, column_rules
+        from runner.checks import column_rules, plan_casts
 
         self.name = name
         self.label = label
@@ -125,22 +271,20 @@ class BatchInspector:
         self.max_rows = getattr(source, "max_bad_rows", None)
         self.columns = columns
         present = [c for c in columns if c in raw_schema]
-        self.casts = [cast_expr(c, columns[c].type, raw_schema[c], job_tz).alias(f"__typed_{c}") for c in present]
-        self.rules = [r for c in present for r in column_rules(c, columns[c], raw_schema[c], job_tz)]
-        self.time_column = source.time_column
-        self.in_window: pl.Expr | None = None
-        if self.time_column:
-            from runner.coltypes import polars_dtype
-
-            dtype = polars_dtype(columns[self.time_column].type)
-            t = pl.col(f"__typed_{self.time_column}")
-            if isinstance(dtype, pl.Date):
-                t = t.cast(pl.Datetime("us"))
-                dtype = pl.Datetime("us")
-            if dtype.time_zone is None:
-                t = t.dt.replace_time_zone(job_tz, ambiguous="earliest", non_existent="null")
-            t = t.dt.convert_time_zone("UTC")
-            self.in_window = (t >= pl.lit(window.start)) & (t < pl.lit(window.end))
+        self.plan = plan_casts(columns, raw_schema, job_tz, samples)
+        rules = [r for c in present for r in column_rules(c, columns[c], raw_schema[c], job_tz)]
+        window_expr = window_filter(columns, source.time_column, window, job_tz)
+        self.inside = window_expr.fill_null(True).alias(INSIDE) if window_expr is not None else None
+        self.bad = pl.any_horizontal([r.bad for r in rules]).fill_null(False).alias(BAD) if rules else None
+        reasons = [pl.when(r.bad).then(pl.lit(f"{r.column}: {r.label}")) for r in rules]
+        self.repeats = None
+        if repeats is not None and repeats.height:
+            key = list(source.key or [])
+            self.keys = _key_exprs(key, columns)
+            self.position = (pl.col(ROW).cast(pl.Int64) + number * _FILE_SHIFT).alias(POSITION)
+            self.repeats = repeats.select(*[f"__weir_key{i}" for i in range(len(key))], _FIRST)
+            reasons.append(pl.when(pl.col(_REPEAT)).then(pl.lit(f"key ({', '.join(key)}) repeated")))
+        self.reason = pl.coalesce(reasons) if reasons else None
         self.keep_extra = getattr(source, "extra", "keep") == "keep"
         self.output = [
             (pl.col(f"__typed_{c}").alias(c) if c in columns else pl.col(c))
@@ -148,51 +292,78 @@ class BatchInspector:
         ]
         self.raw_names = [c for c in raw_schema.names() if c != ROW]
 
-    def __call__(self, batch: pl.DataFrame) -> pl.DataFrame:
+    def stage(self, frame: pl.LazyFrame) -> pl.LazyFrame:
+        """`frame` (raw columns and row numbers) with typed columns and the two flags, natively."""
+        from runner.checks import apply_fast
+
+        frame = apply_fast(frame, self.plan)
+        flags = [e for e in (self.bad, self.inside) if e is not None]
+        return frame.with_columns(flags) if flags else frame
+
+    def _repeated(self, frame: pl.DataFrame) -> pl.Series:
+        """True on rows whose key was seen on an earlier row of the window."""
         import polars as pl
 
+        keys = frame.select(*self.keys, self.position)
+        joined = keys.join(self.repeats, on=self.repeats.columns[:-1], how="left", maintain_order="left")
+        return joined.select(pl.col(_FIRST).is_not_null() & (pl.col(_FIRST) != pl.col(POSITION))).to_series()
+
+    def __call__(self, batch: pl.DataFrame) -> pl.DataFrame:
+        """Judge one staged batch; return its good rows inside the window, as declared."""
+        import polars as pl
+
+        from runner.checks import settle
+
         height = batch.height
-        frame = batch.with_columns(self.casts) if self.casts else batch
+        frame = batch
+        if self.bad is not None and frame[BAD].any():
+            # rows that may be bad: read their values again with the complete casts, judge again
+            suspects = frame.filter(pl.col(BAD))
+            suspects = settle(suspects, self.plan).with_columns(
+                [e for e in (self.bad, self.inside) if e is not None])
+            frame = pl.concat([frame.filter(~pl.col(BAD)), suspects]).sort(ROW)
         dropped = 0
-        if self.in_window is not None:
-            inside = frame.select(self.in_window.fill_null(True)).to_series()
+        if self.inside is not None:
+            inside = frame[INSIDE]
             dropped = height - int(inside.sum())
             if dropped:
                 frame = frame.filter(inside)
         rejected = 0
-        if self.rules and frame.height:
-            reason = pl.coalesce([pl.when(r.bad).then(pl.lit(f"{r.column}: {r.label}")) for r in self.rules])
-            frame = frame.with_columns(reason.alias("__reason"))
-            bad = frame.filter(pl.col("__reason").is_not_null())
-            rejected = bad.height
+        bad = None
+        if frame.height and (self.bad is not None or self.repeats is not None):
+            mask = frame[BAD] if self.bad is not None else pl.repeat(False, frame.height, eager=True)
+            if self.repeats is not None:
+                repeated = self._repeated(frame)
+                frame = frame.with_columns(repeated.alias(_REPEAT))
+                mask = mask | repeated
+            rejected = int(mask.sum())
             if rejected:
-                self._bad(bad)
-                frame = frame.filter(pl.col("__reason").is_null())
-        with self.stats.lock:
-            self.stats.rows_read += height
-            self.stats.rows_dropped += dropped
-            self.stats.rows_rejected += rejected
-            if rejected:
-                limit, fraction, seen = self.stats.limits.get(self.name, (self.max_rows, None, 0))
-                self.stats.limits[self.name] = (limit, fraction, seen + rejected)
-                if self.max_rows is not None and seen + rejected > self.max_rows:
-                    raise BadRows(f"input {self.name}: more than max_bad_rows {self.max_rows} bad rows "
-                                  f"(at least {seen + rejected}); last in {self.label}")
+                # reasons are worked out for the bad rows only
+                bad = frame.filter(mask).with_columns(self.reason.alias("__reason"))
+                frame = frame.filter(~mask)
+        seen = self.stats.tally(self.name, height, dropped, rejected)
+        if bad is not None:
+            self._bad(bad, seen)
         return frame.select(self.output)
 
-    def _bad(self, bad: pl.DataFrame) -> None:
+    def _describe(self, row: dict[str, Any]) -> str:
+        reason = row["__reason"]
+        where = f"{self.label}, row {row[ROW] + 1}" if row.get(ROW) is not None else self.label
+        if reason.startswith("key ("):
+            return f"{where}: {reason}"
+        column, rule = reason.split(": ", 1)
+        return f"{where}, column {column}: value {row.get(column)!r} breaks rule {rule}"
+
+    def _bad(self, bad: pl.DataFrame, seen: int) -> None:
         import polars as pl
 
         if self.mode == "fail":
-            first = bad.row(0, named=True)
-            column = first["__reason"].split(":", 1)[0]
-            value = first.get(column)
             more = f" ({bad.height} bad rows in this batch alone)" if bad.height > 1 else ""
-            row = f", row {first[ROW] + 1}" if first.get(ROW) is not None else ""
-            raise BadRows(
-                f"input {self.name}: {self.label}{row}, column {column}: value {value!r} breaks rule "
-                f"{first['__reason'].split(': ', 1)[1]}{more}; fix the data or set on_bad_rows: "
-                "quarantine or drop")
+            raise BadRows(f"input {self.name}: {self._describe(bad.row(0, named=True))}{more}; fix the data "
+                          "or set on_bad_rows: quarantine or drop")
+        if self.max_rows is not None and seen > self.max_rows:
+            raise BadRows(f"input {self.name}: more than max_bad_rows {self.max_rows} bad rows (at least {seen}); "
+                          f"e.g. {self._describe(bad.row(0, named=True))}")
         if self.mode == "quarantine":
             cols = [pl.col(c).cast(pl.String) for c in self.raw_names]
             kept = bad.select([
@@ -240,46 +411,84 @@ def _scan(path: str, fmt: str, text_columns: list[str], row_index: bool) -> pl.L
 
 def file_frame(root: Path, name: str, source: FileInput, files: FileSet, window: Window, job_tz: str,
                stats: InputStats, empty_schema: dict[str, Any] | None = None) -> pl.LazyFrame:
-    """One LazyFrame over all files of an input for a window (inspected when declared)."""
+    """One LazyFrame over all files of an input for a window (inspected when declared).
+
+    With `key:`, the key columns of every file are read and aggregated first
+    (`repeated_keys`: one more pass over the files, reading only those
+    columns), because a key can only be judged unique against the whole
+    window: the rows are read twice, and memory grows with the number of
+    distinct keys, not with the data.
+    """
     import polars as pl
 
     columns = declared_columns(source)
+    key = list(source.key or [])
     if not files.paths:
         from runner.coltypes import polars_dtype
 
         schema = {c: polars_dtype(col.type) for c, col in columns.items()} if columns else (empty_schema or {})
         return pl.LazyFrame(schema=schema)
-    stats.limits.setdefault(name, (source.max_bad_rows, source.max_bad_fraction, 0))
-    frames = []
+    stats.limits[name] = (source.max_bad_rows, source.max_bad_fraction)
+    if not columns and not key:
+        frames = [_scan(path, file_format(path, source.format), [], row_index=False) for path in files.paths]
+        return frames[0] if len(frames) == 1 else pl.concat(frames, how="diagonal_relaxed")
+    scans = []
     for path in files.paths:
         fmt = file_format(path, source.format)
         label = _relative(root, path)
-        if not columns:
-            frames.append(_scan(path, fmt, [], row_index=False))
-            continue
-        text_cols = list(columns) if fmt in ("csv", "ndjson") else []
         lf = _scan(path, fmt, [], row_index=False)
         try:
             header = lf.collect_schema()
         except pl.exceptions.PolarsError as exc:
             raise InputError(f"input {name}: cannot read {label}: {str(exc).splitlines()[0]}") from None
-        missing = [c for c in columns if c not in header]
+        missing = [c for c in dict.fromkeys([*columns, *key]) if c not in header]
         if missing:
             raise InputError(f"input {name}: {label} has no column(s) {', '.join(missing)} "
-                             f"(declared in schema; it has {', '.join(header.names())})")
-        text_cols = [c for c in text_cols if c in header]
+                             f"(declared in schema or key; it has {', '.join(header.names())})")
+        text_cols = [c for c in columns if c in header] if fmt in ("csv", "ndjson") else []
         lf = _scan(path, fmt, text_cols, row_index=True)
         if source.extra == "drop":
-            lf = lf.select([ROW, *columns])
-        raw_schema = lf.collect_schema()
-        inspector = BatchInspector(name, label, source, columns, raw_schema, window, job_tz, stats)
+            lf = lf.select(list(dict.fromkeys([ROW, *columns, *key])))
+        raw = lf.collect_schema()
+        scans.append((label, lf, raw, _samples(lf, columns, raw)))
+    repeats = None
+    if key:
+        repeats = repeated_keys([key_frame(lf, i, key, columns, raw, source.time_column, window, job_tz, samples)
+                                 for i, (_, lf, raw, samples) in enumerate(scans)], len(key))
+        if repeats.height and source.on_bad_rows == "fail":
+            stats.tally(name, 0, 0, int(repeats[_COPIES].sum()) - repeats.height)
+            raise key_problem(name, key, repeats, [label for label, _, _, _ in scans])
+    frames = []
+    for i, (label, lf, raw_schema, samples) in enumerate(scans):
+        inspector = BatchInspector(name, label, source, columns, raw_schema, window, job_tz, stats, repeats, i,
+                                   samples)
         out_schema = inspector.output_schema(raw_schema)
-        frames.append(lf.map_batches(inspector, schema=out_schema, streamable=True,
-                                     validate_output_schema=False))
-    stats.counted = stats.counted or bool(columns)
+        frames.append(inspector.stage(lf).map_batches(inspector, schema=out_schema, streamable=True,
+                                                      validate_output_schema=False))
+    stats.counted = True
     if len(frames) == 1:
         return frames[0]
     return pl.concat(frames, how="diagonal_relaxed")
+
+
+SAMPLE = 500  # rows of each text timestamp column read to pick its fast cast
+
+
+def _samples(lf: pl.LazyFrame, columns: dict[str, Column], raw: pl.Schema) -> dict[str, pl.Series]:
+    """The first values of the declared timestamp columns that are read as text."""
+    import polars as pl
+
+    from runner.coltypes import polars_dtype
+
+    wanted = [c for c, col in columns.items()
+              if c in raw and raw[c] == pl.String and isinstance(polars_dtype(col.type), pl.Datetime)]
+    if not wanted:
+        return {}
+    try:
+        head = lf.select(wanted).head(SAMPLE).collect()
+    except pl.exceptions.PolarsError:
+        return {}  # the full read reports the problem
+    return {c: head[c] for c in wanted}
 
 
 def output_frame(paths: list[str], empty_schema: dict[str, Any] | None) -> pl.LazyFrame:
@@ -360,17 +569,25 @@ def database_frame(root: Path, name: str, source: DatabaseInput, window: Window,
     entry = {"input": name, "path": f"{_mask(url)} {source.table or 'query'}", "rows": frame.height,
              "digest": frame_digest(frame)}
     columns = declared_columns(source)
-    if columns:
-        missing = [c for c in columns if c not in frame.columns]
+    key = list(source.key or [])
+    if columns or key:
+        missing = [c for c in dict.fromkeys([*columns, *key]) if c not in frame.columns]
         if missing:
             raise InputError(f"input {name}: the query returns no column(s) {', '.join(missing)}")
-        inspector = BatchInspector(name, f"{_mask(url)} {source.table or 'query'}", source, columns,
-                                   frame.with_row_index(ROW).schema, window, job_tz, stats)
-        frame = inspector(frame.with_row_index(ROW))
+        label = f"{_mask(url)} {source.table or 'query'}"
+        rows = frame.with_row_index(ROW)
+        repeats = None
+        if key:
+            repeats = repeated_keys([key_frame(rows.lazy(), 0, key, columns, rows.schema, source.time_column,
+                                               window, job_tz)], len(key))
+            if repeats.height:
+                stats.tally(name, 0, 0, int(repeats[_COPIES].sum()) - repeats.height)
+                raise key_problem(name, key, repeats, [label])
+        inspector = BatchInspector(name, label, source, columns, rows.schema, window, job_tz, stats, repeats)
+        frame = inspector(inspector.stage(rows.lazy()).collect())
         stats.counted = True
     else:
-        with stats.lock:
-            stats.rows_read += frame.height
+        stats.tally(name, frame.height, 0, 0)
     return frame.lazy(), entry
 
 

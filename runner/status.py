@@ -21,9 +21,25 @@ from runner.windows import Window
 from runner.workspace import Workspace
 
 
-def snapshot(ledger: Ledger, jobs: list[str]) -> Snapshot:
-    """One query per job for its window states, one for the live claims."""
-    states = {job: ledger.states(job) for job in jobs}
+def snapshot(ws: Workspace, ledger: Ledger, jobs: list[str], parts: dict[str, tuple[str, str]],
+             at: datetime, recheck_all: bool = False, extras: bool = False) -> Snapshot:
+    """One query per job for what planning needs of its window states, one for the live claims."""
+    from runner.spec import JobInput
+
+    read = {s.job for j in ws.jobs.values() for s in j.spec.inputs.values() if isinstance(s, JobInput)}
+    states = {}
+    for job in jobs:
+        spec = ws.jobs[job].spec
+        input_from = None
+        if not recheck_all:
+            cad = ws.cadence(job)
+            first = cad.window_at(at - spec.recheck)
+            input_from = (first.key if first is not None else
+                          Window(at - spec.recheck, at - spec.recheck, cad.tz).key)
+        states[job] = ledger.plan_states(
+            job, parts[job][0], parts[job][1], input_from=input_from,
+            upstream=any(isinstance(s, JobInput) for s in spec.inputs.values()),
+            digests=job in read or extras, ingested=spec.late_after is not None, extras=extras)
     claims = set(ledger.claimed().keys())
     return Snapshot(states=states, claims=claims)
 
@@ -60,6 +76,54 @@ class InputProber:
                 waiting = f"input {name}: no files match {', '.join(found.patterns[:2])}"
         return Probe(None if tables else fp.input_part(entries).hash, newest, waiting)
 
+    def many(self, job: str, tz: Any, starts_us: list[int], ends_us: list[int]) -> list[Probe]:
+        """Probes for many windows of one job (given as UTC epoch microseconds): each distinct
+        set of rendered patterns is looked up once."""
+        import polars as pl
+
+        from runner.paths import expand, render_many
+        from runner.sources import files_for_patterns
+        from runner.timeutil import from_us
+
+        def window(i: int) -> Window:
+            return Window(from_us(starts_us[i]), from_us(ends_us[i]), tz)
+
+        spec = self.ws.jobs[job].spec
+        if any(isinstance(s, DatabaseInput) for s in spec.inputs.values()) or not starts_us:
+            return [self(job, window(i)) for i in range(len(starts_us))]
+        files = [(n, s) for n, s in spec.inputs.items() if isinstance(s, FileInput)]
+        starts = pl.Series(starts_us, dtype=pl.Int64)
+        ends = pl.Series(ends_us, dtype=pl.Int64)
+        per_input = []
+        for _, source in files:
+            rendered = render_many(source.files, starts, ends, tz.key)
+            if rendered is not None:
+                per_input.append([(p,) for p in rendered.to_list()])
+            else:
+                per_input.append([tuple(expand(source.files, window(i))) for i in range(len(starts_us))])
+        cache: dict[tuple, Probe] = {}
+        out = []
+        for i in range(len(starts_us)):
+            key = tuple(pats[i] for pats in per_input)
+            found = cache.get(key)
+            if found is None:
+                entries: list[dict[str, Any]] = []
+                newest = None
+                waiting = None
+                for (name, source), patterns in zip(files, key, strict=True):
+                    index_key = (job, name)
+                    if index_key not in self.indexes:
+                        self.indexes[index_key] = FileIndex.build(self.ws.root, source.files)
+                    fs = files_for_patterns(self.ws.root, name, source, list(patterns), self.indexes[index_key])
+                    entries.extend(fs.manifest)
+                    if fs.newest_mtime_ns is not None:
+                        newest = max(newest or 0, fs.newest_mtime_ns)
+                    if not fs.paths and source.required and waiting is None:
+                        waiting = f"input {name}: no files match {', '.join(fs.patterns[:2])}"
+                found = cache[key] = Probe(fp.input_part(entries).hash, newest, waiting)
+            out.append(found)
+        return out
+
 
 def closure(ws: Workspace, jobs: list[str]) -> list[str]:
     """`jobs` (all when empty) plus their producers, transitively, in dependency order."""
@@ -67,12 +131,15 @@ def closure(ws: Workspace, jobs: list[str]) -> list[str]:
 
 
 def survey(ws: Workspace, ledger: Ledger, at: datetime, jobs: list[str] | None = None,
-           recheck_all: bool = False) -> dict[str, Any]:
-    """Assessed frames of `jobs` (all when empty), reading the ledger and inputs once."""
+           recheck_all: bool = False, extras: bool = False) -> dict[str, Any]:
+    """Assessed frames of `jobs` (all when empty), reading the ledger and inputs once.
+
+    `extras` also brings each window's run id, output, digest and duration (for the report).
+    """
     names = closure(ws, jobs or [])
-    snap = snapshot(ledger, names)
     parts = {}
     for name in names:
         spec_p, code_p = spec_and_code(ws, name)
         parts[name] = (spec_p.hash, code_p.hash)
+    snap = snapshot(ws, ledger, names, parts, at, recheck_all, extras)
     return assess(ws, at, snap, parts, InputProber(ws), jobs or None, recheck_all)
