@@ -157,6 +157,10 @@ def load_workspace(root: Path | str = ".", resolve_sql: bool = True, thorough: b
             (warnings if p.severity == "warning" else problems).append(p)
     if problems:
         raise SpecProblems(problems)
+    if thorough:
+        from runner.cardinality import batch_advice
+
+        warnings.extend(batch_advice(root, jobs))
     return Workspace(root=root, jobs=jobs, warnings=warnings, resolved_schemas=schemas)
 
 
