@@ -30,7 +30,13 @@ found), 2 bad input (job files, arguments, ledger), 70 an internal error.
 
 
 def _help(command: click.Command, name: str) -> str:
-    ctx = click.Context(command, info_name=name, terminal_width=100, max_content_width=100)
+    # subcommands render under the group's context, as they do for `weir NAME --help`
+    # (it carries the group's settings, e.g. the -h short form of --help)
+    parent = cli.make_context("weir", [], resilient_parsing=True, terminal_width=100, max_content_width=100)
+    if command is cli:
+        return cli.get_help(parent)
+    ctx = click.Context(command, info_name=name.split()[-1], parent=parent, terminal_width=100,
+                        max_content_width=100)
     return command.get_help(ctx)
 
 
