@@ -194,28 +194,28 @@ def _upstream(ws: Workspace, job: str, frame: pl.DataFrame, snapshot: Snapshot,
                                pl.col("output_digest").alias("p_digest"))
                if recorded is not None and recorded.height else
                pl.DataFrame(schema={"producer_key": pl.String, "p_state": pl.String, "p_digest": pl.String}))
-        pairs = pairs.join(rec, on="producer_key", how="left")
+        lazy = pairs.lazy().join(rec.lazy(), on="producer_key", how="left")
         if same:
-            current = frame.select(pl.col("window_key").alias("producer_key"),
-                                   (pl.col("state") == "done").alias("p_current"))
+            current = frame.lazy().select(pl.col("window_key").alias("producer_key"),
+                                          (pl.col("state") == "done").alias("p_current"))
         else:
             a = assessed.get(source.job)
-            current = (a.select(pl.col("window_key").alias("producer_key"),
-                                ((pl.col("state") == "done") & ~pl.col("pending")).alias("p_current"))
-                       if a is not None else pl.DataFrame(schema={"producer_key": pl.String, "p_current": pl.Boolean}))
-        pairs = pairs.join(current, on="producer_key", how="left").with_columns(
+            current = (a.lazy().select(pl.col("window_key").alias("producer_key"),
+                                       ((pl.col("state") == "done") & ~pl.col("pending")).alias("p_current"))
+                       if a is not None else
+                       pl.LazyFrame(schema={"producer_key": pl.String, "p_current": pl.Boolean}))
+        lazy = lazy.join(current, on="producer_key", how="left").with_columns(
             pl.lit(name).alias("input"), pl.lit(source.job).alias("job"),
             pl.col("p_current").fill_null(False))
-        parts.append(pairs)
+        parts.append(lazy)
     if not parts:
         return frame.select("window_key").with_columns(
             pl.lit(fp.upstream_part([]).hash).alias("up_hash"), pl.lit(True).alias("up_ready"),
             pl.lit(True).alias("up_current"), pl.lit(None, dtype=pl.String).alias("up_waiting"))
-    pairs = pl.concat(parts)
     # the exact canonical JSON that fingerprint.upstream_part hashes
     digest_json = pl.when(pl.col("p_digest").is_null()).then(pl.lit("null")).otherwise(
         pl.lit('"') + pl.col("p_digest") + pl.lit('"'))
-    pairs = pairs.with_columns((
+    pairs = pl.concat(parts).with_columns((
         pl.lit('{"digest":') + digest_json + pl.lit(',"input":"') + pl.col("input") + pl.lit('","job":"')
         + pl.col("job") + pl.lit('","window":"') + pl.col("producer_key") + pl.lit('"}')).alias("entry"))
     pairs = pairs.sort("window_key", "input", "job", "producer_key")
@@ -230,7 +230,7 @@ def _upstream(ws: Workspace, job: str, frame: pl.DataFrame, snapshot: Snapshot,
         (pl.col("producer_key").filter((pl.col("p_state") != "done") | pl.col("p_state").is_null()).len())
         .alias("missing_count"),
         pl.len().alias("count"),
-    )
+    ).collect()
     texts = grouped["text"].to_list()
     hashes = [fp.digest("[" + t + "]") for t in texts]
     grouped = grouped.with_columns(pl.Series("up_hash", hashes, dtype=pl.String))
@@ -271,10 +271,10 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, now_pa
     states = snapshot.states.get(job)
     if states is not None and states.height:
         frame = frame.join(states, on="window_key", how="left")
-    for name, dtype in _state_columns().items():  # columns a snapshot may leave out
-        if name not in frame.columns:
-            frame = frame.with_columns(pl.lit(None, dtype=dtype).alias(name))
-    frame = frame.with_columns(pl.col("failures").fill_null(0))
+    missing = [pl.lit(None, dtype=dtype).alias(name) for name, dtype in _state_columns().items()
+               if name not in frame.columns and name != "failures"]  # columns a snapshot may leave out
+    failures = pl.col("failures").fill_null(0) if "failures" in frame.columns else pl.lit(0, dtype=pl.Int64)
+    frame = frame.with_columns(*missing, failures.alias("failures"))
     up = _upstream(ws, job, frame, snapshot, assessed)
     frame = frame.join(up, on="window_key", how="left")
     # inputs: probed where cheap enough to matter
@@ -282,26 +282,28 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, now_pa
     has_files = any(isinstance(s, FileInput) for s in spec.inputs.values())
     need = (pl.lit(True) if recheck_all else
             (pl.col("end_us") >= horizon) | pl.col("state").is_null() | (pl.col("state") == "failed"))
-    probed_hash: list[str | None] = [None] * frame.height
-    probed_wait: list[str | None] = [None] * frame.height
-    newest: list[int | None] = [None] * frame.height
+    probed = pl.DataFrame(schema={"in_hash": pl.String, "in_newest": pl.Int64, "in_waiting": pl.String})
+    rows = pl.Series("i", [], dtype=pl.UInt32)
     if probe is not None and has_files:
         # with_columns, not select: a bare literal (recheck_all) would select one row, not one per window
-        mask = frame.with_columns(need.alias("_need"))["_need"].to_list()
-        starts = frame["start_us"].to_list()
-        ends = frame["end_us"].to_list()
-        rows = [i for i, wanted in enumerate(mask) if wanted]
+        rows = frame.with_columns(need.alias("_need"))["_need"].arg_true()
+        starts = frame["start_us"].gather(rows).to_list()
+        ends = frame["end_us"].gather(rows).to_list()
         many = getattr(probe, "many", None)
         if many is not None:  # a batch of windows as arrays: no Window object per window
-            results = many(job, cad.tz, [starts[i] for i in rows], [ends[i] for i in rows])
+            results = many(job, cad.tz, starts, ends)
         else:
-            results = [probe(job, Window(from_us(starts[i]), from_us(ends[i]), cad.tz)) for i in rows]
-        for i, result in zip(rows, results, strict=True):
-            probed_hash[i], newest[i], probed_wait[i] = (result.input_hash, result.newest_mtime_ns, result.waiting)
+            results = [probe(job, Window(from_us(a), from_us(b), cad.tz)) for a, b in zip(starts, ends, strict=True)]
+        if isinstance(results, list):
+            probed = pl.DataFrame({"in_hash": [r.input_hash for r in results],
+                                   "in_newest": [r.newest_mtime_ns for r in results],
+                                   "in_waiting": [r.waiting for r in results]}, schema=probed.schema)
+        else:
+            probed = results
+    # the probed rows back in place; windows not probed get nulls
+    frame = frame.with_row_index("_i").join(
+        probed.with_columns(rows.alias("_i")), on="_i", how="left", maintain_order="left").drop("_i")
     frame = frame.with_columns(
-        pl.Series("in_hash", probed_hash, dtype=pl.String),
-        pl.Series("in_waiting", probed_wait, dtype=pl.String),
-        pl.Series("in_newest", newest, dtype=pl.Int64),
         (pl.col("window_key").is_in(
             pl.Series([k for j, k in snapshot.claims if j == job], dtype=pl.String).implode()))
         .alias("running"),
@@ -503,25 +505,18 @@ def stale_ranges(ws: Workspace, assessed: dict[str, pl.DataFrame]) -> list[Stale
     out = []
     for job, frame in assessed.items():
         cad = ws.cadence(job)
-        rows = frame.sort("start_us").with_columns(
-            pl.col("reasons").list.join(", ").alias("why"),
-        ).select("start_us", "end_us", "state", "why", "pending").iter_rows()
-        current: list[Any] | None = None
-        for s, e, st, why, pending in rows:
-            if st != "stale":
-                if current:
-                    out.append(_range(job, cad, current))
-                current = None
-                continue
-            if current and current[3] == why and current[4] == pending and current[1] == s:
-                current[1] = e
-                current[2] += 1
-            else:
-                if current:
-                    out.append(_range(job, cad, current))
-                current = [s, e, 1, why, pending]
-        if current:
-            out.append(_range(job, cad, current))
+        rows = frame.sort("start_us").filter(pl.col("state") == "stale").select(
+            "start_us", "end_us", pl.col("reasons").list.join(", ").alias("why"), "pending")
+        if rows.height == 0:
+            continue
+        # a new range starts where the reasons change or the windows stop touching
+        breaks = ((pl.col("start_us") != pl.col("end_us").shift(1)) | (pl.col("why") != pl.col("why").shift(1))
+                  | (pl.col("pending") != pl.col("pending").shift(1))).fill_null(True)
+        grouped = rows.with_columns(breaks.cast(pl.Int64).cum_sum().alias("g")).group_by("g", maintain_order=True).agg(
+            pl.col("start_us").first(), pl.col("end_us").last(), pl.len().alias("n"), pl.col("why").first(),
+            pl.col("pending").first())
+        for s_us, e_us, n, why, pending in grouped.select("start_us", "end_us", "n", "why", "pending").iter_rows():
+            out.append(_range(job, cad, [s_us, e_us, n, why, pending]))
     return out
 
 

@@ -7,6 +7,8 @@ the views the commands show: plan, stale ranges, impact.
 
 from __future__ import annotations
 
+from collections.abc import Iterator, Mapping
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
@@ -21,14 +23,39 @@ from runner.windows import Window
 from runner.workspace import Workspace
 
 
+class _Arriving(Mapping):
+    """Job -> state frame, each read by a background thread in dependency order.
+
+    The planner asks for jobs in that same order, so while it assesses one job
+    the next job's rows are being read (SQLite and polars both let go of the
+    interpreter lock for their heavy work, so the two overlap on two cores).
+    """
+
+    def __init__(self, futures: dict[str, Future]):
+        self._futures = futures
+
+    def __getitem__(self, job: str) -> Any:
+        return self._futures[job].result()
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._futures)
+
+    def __len__(self) -> int:
+        return len(self._futures)
+
+
 def snapshot(ws: Workspace, ledger: Ledger, jobs: list[str], parts: dict[str, tuple[str, str]],
              at: datetime, recheck_all: bool = False, extras: bool = False) -> Snapshot:
-    """One query per job for what planning needs of its window states, one for the live claims."""
+    """One query per job for what planning needs of its window states, one for the live claims.
+
+    The per-job reads run on a background thread, in `jobs` order; the returned
+    snapshot's `states` wait for each job's read when it is first looked at.
+    """
     from runner.spec import JobInput
 
     read = {s.job for j in ws.jobs.values() for s in j.spec.inputs.values() if isinstance(s, JobInput)}
-    states = {}
-    for job in jobs:
+
+    def states_of(job: str) -> Any:
         spec = ws.jobs[job].spec
         input_from = None
         if not recheck_all:
@@ -36,12 +63,16 @@ def snapshot(ws: Workspace, ledger: Ledger, jobs: list[str], parts: dict[str, tu
             first = cad.window_at(at - spec.recheck)
             input_from = (first.key if first is not None else
                           Window(at - spec.recheck, at - spec.recheck, cad.tz).key)
-        states[job] = ledger.plan_states(
+        return ledger.plan_states(
             job, parts[job][0], parts[job][1], input_from=input_from,
             upstream=any(isinstance(s, JobInput) for s in spec.inputs.values()),
             digests=job in read or extras, ingested=spec.late_after is not None, extras=extras)
+
     claims = set(ledger.claimed().keys())
-    return Snapshot(states=states, claims=claims)
+    reader = ThreadPoolExecutor(max_workers=1, thread_name_prefix="weir-ledger-read")
+    futures = {job: reader.submit(states_of, job) for job in jobs}
+    reader.shutdown(wait=False)  # the thread ends once the queued reads are done
+    return Snapshot(states=_Arriving(futures), claims=claims)
 
 
 @dataclass
@@ -50,6 +81,7 @@ class InputProber:
 
     ws: Workspace
     indexes: dict[tuple[str, str], FileIndex] = field(default_factory=dict)
+    as_columns: bool = False  # `many` returns a frame (in_hash, in_newest, in_waiting) instead of Probes
 
     def __call__(self, job: str, window: Window) -> Probe:
         from runner.sources import find_files
@@ -94,35 +126,41 @@ class InputProber:
         files = [(n, s) for n, s in spec.inputs.items() if isinstance(s, FileInput)]
         starts = pl.Series(starts_us, dtype=pl.Int64)
         ends = pl.Series(ends_us, dtype=pl.Int64)
+        # one text key per window: its rendered patterns, input by input (\x1f and \x1e never
+        # occur in a path), so that windows sharing their files are looked up once
         per_input = []
         for _, source in files:
             rendered = render_many(source.files, starts, ends, tz.key)
-            if rendered is not None:
-                per_input.append([(p,) for p in rendered.to_list()])
-            else:
-                per_input.append([tuple(expand(source.files, window(i))) for i in range(len(starts_us))])
-        cache: dict[tuple, Probe] = {}
-        out = []
-        for i in range(len(starts_us)):
-            key = tuple(pats[i] for pats in per_input)
-            found = cache.get(key)
-            if found is None:
-                entries: list[dict[str, Any]] = []
-                newest = None
-                waiting = None
-                for (name, source), patterns in zip(files, key, strict=True):
-                    index_key = (job, name)
-                    if index_key not in self.indexes:
-                        self.indexes[index_key] = FileIndex.build(self.ws.root, source.files)
-                    fs = files_for_patterns(self.ws.root, name, source, list(patterns), self.indexes[index_key])
-                    entries.extend(fs.manifest)
-                    if fs.newest_mtime_ns is not None:
-                        newest = max(newest or 0, fs.newest_mtime_ns)
-                    if not fs.paths and source.required and waiting is None:
-                        waiting = f"input {name}: no files match {', '.join(fs.patterns[:2])}"
-                found = cache[key] = Probe(fp.input_part(entries).hash, newest, waiting)
-            out.append(found)
-        return out
+            if rendered is None:
+                rendered = pl.Series([chr(31).join(expand(source.files, window(i))) for i in range(len(starts_us))],
+                                     dtype=pl.String)
+            per_input.append(rendered)
+        keys = pl.concat_str(per_input, separator=chr(30)) if len(per_input) > 1 else per_input[0]
+        unique = keys.unique(maintain_order=True).to_list()
+        looked_up: dict[str, Probe] = {}
+        for key in unique:
+            entries: list[dict[str, Any]] = []
+            newest = None
+            waiting = None
+            for (name, source), patterns in zip(files, key.split(chr(30)), strict=True):
+                index_key = (job, name)
+                if index_key not in self.indexes:
+                    self.indexes[index_key] = FileIndex.build(self.ws.root, source.files)
+                fs = files_for_patterns(self.ws.root, name, source, patterns.split(chr(31)), self.indexes[index_key])
+                entries.extend(fs.manifest)
+                if fs.newest_mtime_ns is not None:
+                    newest = max(newest or 0, fs.newest_mtime_ns)
+                if not fs.paths and source.required and waiting is None:
+                    waiting = f"input {name}: no files match {', '.join(fs.patterns[:2])}"
+            looked_up[key] = Probe(fp.input_part(entries).hash, newest, waiting)
+        if self.as_columns:
+            table = pl.DataFrame({
+                "key": list(looked_up), "in_hash": [p.input_hash for p in looked_up.values()],
+                "in_newest": [p.newest_mtime_ns for p in looked_up.values()],
+                "in_waiting": [p.waiting for p in looked_up.values()]},
+                schema={"key": pl.String, "in_hash": pl.String, "in_newest": pl.Int64, "in_waiting": pl.String})
+            return pl.DataFrame({"key": keys}).join(table, on="key", how="left", maintain_order="left").drop("key")
+        return [looked_up[k] for k in keys.to_list()]
 
 
 def closure(ws: Workspace, jobs: list[str]) -> list[str]:
@@ -142,4 +180,4 @@ def survey(ws: Workspace, ledger: Ledger, at: datetime, jobs: list[str] | None =
         spec_p, code_p = spec_and_code(ws, name)
         parts[name] = (spec_p.hash, code_p.hash)
     snap = snapshot(ws, ledger, names, parts, at, recheck_all, extras)
-    return assess(ws, at, snap, parts, InputProber(ws), jobs or None, recheck_all)
+    return assess(ws, at, snap, parts, InputProber(ws, as_columns=True), jobs or None, recheck_all)
