@@ -69,12 +69,16 @@ class ClaimKeeper:
     def take(self, job: str, key: str) -> bool:
         if not self.ledger.claim(job, key, self.owner, self.ttl):
             return False
+        self.hold(job, key)
+        return True
+
+    def hold(self, job: str, key: str) -> None:
+        """Keep renewing a claim this process has already taken."""
         with self._lock:
             self.held.add((job, key))
             if self._thread is None:
                 self._thread = threading.Thread(target=self._loop, name="weir-claims", daemon=True)
                 self._thread.start()
-        return True
 
     def drop(self, job: str, key: str) -> None:
         with self._lock:
@@ -252,36 +256,43 @@ def run_window(ctx: RunContext, job: str, window: Window, force: bool = False,
     """
     assert ctx.claims is not None
     started = time.perf_counter()
-    if not ctx.claims.take(job, window.key):
-        return Outcome(job, window.id, "claimed", "another process is running this window")
-    released = False
+    held = False
+    outcome = Outcome(job, window.id, "failed", "not started")
     try:
         retries = ctx.ws.jobs[job].spec.retries
         delay = ctx.ws.jobs[job].spec.retry_delay.total_seconds()
         attempt = 0
         while True:
             attempt += 1
-            outcome = _attempt(ctx, job, window, force, attempt, prepared if attempt == 1 else None)
-            if outcome.status in ("done", "skipped", "waiting") or attempt > retries:
-                released = outcome.status == "done"  # finish_run released the claim
+            outcome, took = _attempt(ctx, job, window, force, attempt, prepared if attempt == 1 else None, held)
+            held = held or took
+            if outcome.status in ("done", "skipped", "waiting", "claimed") or attempt > retries:
                 break
             ctx.sleep(delay * (2 ** (attempt - 1)))
         outcome.seconds = time.perf_counter() - started
         return outcome
     finally:
-        ctx.claims.drop(job, window.key)
-        if not released:
-            ctx.ledger.release(job, window.key, ctx.owner)
+        if held:
+            ctx.claims.drop(job, window.key)
+            if outcome.status != "done":  # a done run's finish_run released the claim
+                ctx.ledger.release(job, window.key, ctx.owner)
 
 
 def _attempt(ctx: RunContext, job: str, window: Window, force: bool, attempt: int,
-             prepared: Prepared | None = None) -> Outcome:
+             prepared: Prepared | None, held: bool) -> tuple[Outcome, bool]:
+    """One attempt; returns its outcome and whether it took the window's claim.
+
+    The first attempt finds the inputs and fingerprint (reads only), then in one
+    ledger transaction skips a current window or takes the claim and records
+    the run. Later attempts already hold the claim.
+    """
     from runner.sources import InputStats, database_frame
 
     ws = ctx.ws
     spec = ws.jobs[job].spec
     stats = InputStats()
     run_id = None
+    took = False
     t0 = time.perf_counter()
     try:
         db_frames = {}
@@ -293,15 +304,27 @@ def _attempt(ctx: RunContext, job: str, window: Window, force: bool, attempt: in
                 db_entries.append(entry)
         prep = prepared if prepared is not None and not db_entries else prepare(ctx, job, window, db_entries)
         if prep.waiting:
-            return Outcome(job, window.id, "waiting", prep.waiting)
-        current = ctx.ledger.state_row(job, window.key)
-        if (not force and current is not None and current["state"] == "done"
-                and current["fingerprint"] == prep.fingerprint and not current.get("output_state")):
-            return Outcome(job, window.id, "skipped", "current: already done with this fingerprint")
-        run_id = ctx.ledger.start_run(_run_values(ctx, job, window, prep, attempt, force), _texts(prep))
-        return _execute(ctx, job, window, prep, run_id, stats, db_frames, t0)
+            return Outcome(job, window.id, "waiting", prep.waiting), took
+        values, texts = _run_values(ctx, job, window, prep, attempt, force), _texts(prep)
+        if not held:
+            status, run_id = ctx.ledger.begin_run(job, window.key, ctx.owner, CLAIM_TTL,
+                                                  None if force else prep.fingerprint, values, texts)
+            if status == "claimed":
+                return Outcome(job, window.id, "claimed", "another process is running this window"), took
+            if status == "current":
+                return Outcome(job, window.id, "skipped", "current: already done with this fingerprint"), took
+            assert ctx.claims is not None
+            ctx.claims.hold(job, window.key)
+            took = True
+        else:
+            current = ctx.ledger.state_row(job, window.key)
+            if (not force and current is not None and current["state"] == "done"
+                    and current["fingerprint"] == prep.fingerprint and not current.get("output_state")):
+                return Outcome(job, window.id, "skipped", "current: already done with this fingerprint"), took
+            run_id = ctx.ledger.start_run(values, texts)
+        return _execute(ctx, job, window, prep, run_id, stats, db_frames, t0), took
     except Exception as exc:  # noqa: BLE001 - every failure is recorded, none escapes
-        return _fail(ctx, job, window, run_id, exc, stats, attempt, t0)
+        return _fail(ctx, job, window, run_id, exc, stats, attempt, t0), took
 
 
 def _run_values(ctx: RunContext, job: str, window: Window, prep: Prepared, attempt: int, force: bool

@@ -136,6 +136,27 @@ locks = sa.Table(
 
 STATE_COLUMNS = [c.name for c in windows.columns]
 
+# Statements on the per-window path, built once: executing the same statement
+# object with fresh parameters lets SQLAlchemy reuse its compiled form instead
+# of constructing and keying a new statement for every window.
+_b = sa.bindparam
+_INSERT_RUN = sa.insert(runs)
+_UPDATE_RUN = sa.update(runs).where(runs.c.id == _b("b_run_id"))
+_ABANDON_RUNS = sa.update(runs).where(
+    runs.c.job == _b("b_job"), runs.c.window_key == _b("b_key"), runs.c.status == "running",
+    runs.c.id < _b("b_run_id")).values(status="abandoned")
+_RUN_FINGERPRINT = sa.select(runs.c.fingerprint).where(runs.c.id == _b("b_run_id"))
+_STATE_ROW = sa.select(windows).where(windows.c.job == _b("b_job"), windows.c.window_key == _b("b_key"))
+_UPDATE_WINDOW = sa.update(windows).where(windows.c.job == _b("b_job"), windows.c.window_key == _b("b_key"))
+_INSERT_WINDOW = sa.insert(windows)
+_INSERT_CLAIM = sa.insert(claims)
+_CLAIM_HOLDER = sa.select(claims.c.owner, claims.c.expires).where(
+    claims.c.job == _b("b_job"), claims.c.window_key == _b("b_key"))
+_TAKE_CLAIM = sa.update(claims).where(
+    claims.c.job == _b("b_job"), claims.c.window_key == _b("b_key"), claims.c.owner == _b("b_holder"))
+_RELEASE_CLAIM = sa.delete(claims).where(
+    claims.c.job == _b("b_job"), claims.c.window_key == _b("b_key"), claims.c.owner == _b("b_owner"))
+
 
 def utc_text(instant: datetime | None = None) -> str:
     """RFC 3339 UTC with microseconds, for run times."""
@@ -260,12 +281,12 @@ class Ledger:
         return res.rowcount == 1
 
     def release(self, job: str, key: str, owner: str, conn: sa.Connection | None = None) -> None:
-        stmt = sa.delete(claims).where(claims.c.job == job, claims.c.window_key == key, claims.c.owner == owner)
+        params = {"b_job": job, "b_key": key, "b_owner": owner}
         if conn is not None:
-            conn.execute(stmt)
+            conn.execute(_RELEASE_CLAIM, params)
             return
         with self._tx() as c:
-            c.execute(stmt)
+            c.execute(_RELEASE_CLAIM, params)
 
     def claimed(self, job: str | None = None) -> dict[tuple[str, str], str]:
         """Live claims: (job, window_key) -> owner."""
@@ -295,7 +316,8 @@ class Ledger:
         where = [table.c[k] == v for k, v in key.items()]
         try:
             with self._tx() as conn:
-                conn.execute(sa.insert(table).values(**key, owner=owner, expires=now + ttl))
+                stmt = _INSERT_CLAIM if table is claims else sa.insert(table)
+                conn.execute(stmt, {**key, "owner": owner, "expires": now + ttl})
             return True
         except sa_exc.IntegrityError:
             pass
@@ -318,6 +340,41 @@ class Ledger:
 
     # ------------------------------------------------------------ runs
 
+    def begin_run(self, job: str, key: str, owner: str, ttl: float, fingerprint: str | None,
+                  values: dict[str, Any], stored: Iterable[tuple[str, str, str]] = ()) -> tuple[str, int | None]:
+        """In one transaction: skip a current window, take its claim, record the run as `running`.
+
+        Returns ("current", None) when the window is done with `fingerprint` (pass
+        None to run regardless), ("claimed", None) when another live process holds
+        it, else ("started", run_id) with the claim held by `owner`.
+        """
+        now = time.time()
+        where = {"b_job": job, "b_key": key}
+        try:
+            with self._tx() as conn:
+                if fingerprint is not None:
+                    state = conn.execute(_STATE_ROW, where).mappings().first()
+                    if (state is not None and state["state"] == "done" and state["fingerprint"] == fingerprint
+                            and not state["output_state"]):
+                        return "current", None
+                holder = conn.execute(_CLAIM_HOLDER, where).first()
+                lease = {"job": job, "window_key": key, "owner": owner, "expires": now + ttl}
+                if holder is None:
+                    conn.execute(_INSERT_CLAIM, lease)
+                elif holder[0] == owner or holder[1] < now or _gone(holder[0]):
+                    # our own, expired, or held by a process of this host that has ended
+                    conn.execute(_TAKE_CLAIM, {**where, "b_holder": holder[0], "owner": owner,
+                                               "expires": now + ttl})
+                else:
+                    return "claimed", None
+                self.put_texts(conn, stored)
+                row = {"status": "running", "started_at": utc_text(), "host": socket.gethostname(),
+                       "pid": os.getpid(), **values}
+                run_id = int(conn.execute(_INSERT_RUN, row).inserted_primary_key[0])
+        except sa_exc.IntegrityError:
+            return "claimed", None  # another process inserted the claim first (databases without a write lock)
+        return "started", run_id
+
     def start_run(self, values: dict[str, Any], stored: Iterable[tuple[str, str, str]] = ()) -> int:
         """Record a run attempt as `running`; store its texts; return its id."""
         row = {
@@ -326,7 +383,7 @@ class Ledger:
         }
         with self._tx() as conn:
             self.put_texts(conn, stored)
-            res = conn.execute(sa.insert(runs).values(**row))
+            res = conn.execute(_INSERT_RUN, row)
             return int(res.inserted_primary_key[0])
 
     def finish_run(self, run_id: int, job: str, key: str, owner: str | None, values: dict[str, Any],
@@ -337,20 +394,17 @@ class Ledger:
         `window` holds the state row to write for (job, key).
         """
         values = {"finished_at": utc_text(), **values}
+        where = {"b_job": job, "b_key": key}
         with self._tx() as conn:
-            conn.execute(sa.update(runs).where(runs.c.id == run_id).values(**values))
+            conn.execute(_UPDATE_RUN, {"b_run_id": run_id, **values})
             # earlier attempts at this window that never finished: their process died
-            conn.execute(sa.update(runs).where(
-                runs.c.job == job, runs.c.window_key == key, runs.c.status == "running", runs.c.id < run_id,
-            ).values(status="abandoned"))
+            conn.execute(_ABANDON_RUNS, {**where, "b_run_id": run_id})
             state = dict(window)
             state.update(job=job, window_key=key, run_id=run_id, finished_at=values["finished_at"])
             if "last_fingerprint" not in state:
-                state["last_fingerprint"] = conn.execute(
-                    sa.select(runs.c.fingerprint).where(runs.c.id == run_id)).scalar()
-            where = (windows.c.job == job, windows.c.window_key == key)
+                state["last_fingerprint"] = conn.execute(_RUN_FINGERPRINT, {"b_run_id": run_id}).scalar()
             if state["state"] == "failed":
-                current = conn.execute(sa.select(windows).where(*where)).mappings().first()
+                current = conn.execute(_STATE_ROW, where).mappings().first()
                 if current is not None:
                     # keep the last good output's identity: consumers and digests still refer to it
                     for col in ("output", "output_digest", "output_checksum", "good_run_id", "fingerprint",
@@ -361,8 +415,8 @@ class Ledger:
             else:
                 state["failures"] = 0
                 state["good_run_id"] = run_id
-            if conn.execute(sa.update(windows).where(*where).values(**state)).rowcount == 0:
-                conn.execute(sa.insert(windows).values(**state))
+            if conn.execute(_UPDATE_WINDOW, {**where, **state}).rowcount == 0:
+                conn.execute(_INSERT_WINDOW, state)
             if owner is not None:
                 self.release(job, key, owner, conn)
 
@@ -474,7 +528,20 @@ class Ledger:
             return {r["window_key"]: dict(r) for r in conn.execute(q).mappings() if r["window_key"] in wanted}
 
     def state_row(self, job: str, key: str) -> dict[str, Any] | None:
-        return self.state_rows(job, [key]).get(key)
+        if self.engine is None:
+            return None
+        with self._tx(read=True) as conn:
+            row = conn.execute(_STATE_ROW, {"b_job": job, "b_key": key}).mappings().first()
+        return dict(row) if row else None
+
+    def done_keys(self, job: str) -> set[str]:
+        """Keys of the windows of `job` recorded done (and not flagged by `weir verify`)."""
+        if self.engine is None:
+            return set()
+        with self._tx(read=True) as conn:
+            rows = conn.execute(sa.select(windows.c.window_key).where(
+                windows.c.job == job, windows.c.state == "done", windows.c.output_state.is_(None))).all()
+        return {r[0] for r in rows}
 
     def run(self, run_id: int) -> dict[str, Any] | None:
         if self.engine is None:

@@ -50,6 +50,11 @@ def _run_in_worker(job: str, window_key: str) -> dict[str, Any]:
     return run_window(ctx, job, window, force=settings.force).as_dict()
 
 
+def _run_chunk_in_worker(items: list[tuple[str, str]]) -> list[dict[str, Any]]:
+    """Several independent windows in one message: fewer round trips for small windows."""
+    return [_run_in_worker(job, key) for job, key in items]
+
+
 def _key_to_instant(key: str) -> str:
     return key.replace("Z", "+00:00")
 
@@ -60,6 +65,7 @@ def default_workers() -> int:
 
 POOL_STARTUP_SECONDS = 3.0  # about what starting worker processes costs (imports): measured, rounded up
 DEFAULT_WINDOW_SECONDS = 0.2  # a window's guess before any of its job's runs are recorded
+CHUNK = 16  # most windows handed to a worker in one message
 
 
 def run_tasks(tasks: list[Task], settings: Settings, workers: int,
@@ -102,9 +108,11 @@ def run_tasks(tasks: list[Task], settings: Settings, workers: int,
         return should_stop is not None and should_stop()
 
     estimate = _estimates(ctx, {t.job for t in tasks}) if workers > 1 else {}
+    # only a window recorded done can be current: the others need no fingerprint to know they must run
+    recorded = {job: ctx.ledger.done_keys(job) for job in {t.job for t in tasks}} if not settings.force else {}
     to_run: list[int] = []
     prepared: dict[int, Any] = {}
-    running: dict[Future[dict[str, Any]], int] = {}
+    running: dict[Future[list[dict[str, Any]]], list[int]] = {}
     pool: ProcessPoolExecutor | None = None
     saved_env = os.environ.get("POLARS_MAX_THREADS")
     try:
@@ -114,7 +122,10 @@ def run_tasks(tasks: list[Task], settings: Settings, workers: int,
                 if outcomes[i] is not None:
                     continue
                 t = tasks[i]
-                current, prepared[i] = (False, None) if settings.force else precheck(ctx, t.job, t.window)
+                if settings.force or t.window.key not in recorded[t.job]:
+                    current = False
+                else:
+                    current, prepared[i] = precheck(ctx, t.job, t.window)
                 if current:
                     finish(i, Outcome(t.job, t.window.id, "skipped", "current: already done with this fingerprint"))
                 else:
@@ -128,14 +139,19 @@ def run_tasks(tasks: list[Task], settings: Settings, workers: int,
                 pool = _start_pool(settings, workers)
             if pool is not None:
                 while to_run and len(running) < workers * 2:
-                    i = to_run.pop(0)
-                    prepared.pop(i, None)  # the worker looks for itself
-                    running[pool.submit(_run_in_worker, tasks[i].job, tasks[i].window.key)] = i
+                    # chunks that keep every worker busy without holding back dependants for long
+                    size = max(1, min(CHUNK, len(to_run) // (workers * 2)))
+                    chunk, to_run = to_run[:size], to_run[size:]
+                    for i in chunk:
+                        prepared.pop(i, None)  # the worker looks for itself
+                    items = [(tasks[i].job, tasks[i].window.key) for i in chunk]
+                    running[pool.submit(_run_chunk_in_worker, items)] = chunk
                 if running:
                     done, _ = wait(running, return_when=FIRST_COMPLETED)
                     for fut in done:
-                        i = running.pop(fut)
-                        finish(i, _result(fut, tasks[i]))
+                        chunk = running.pop(fut)
+                        for i, outcome in zip(chunk, _results(fut, [tasks[i] for i in chunk]), strict=True):
+                            finish(i, outcome)
             elif to_run:
                 i = to_run.pop(0)
                 t = tasks[i]
@@ -176,9 +192,9 @@ def _start_pool(settings: Settings, workers: int) -> ProcessPoolExecutor:
                                initializer=_init_worker, initargs=(settings,))
 
 
-def _result(fut: Future[dict[str, Any]], task: Task) -> Outcome:
+def _results(fut: Future[list[dict[str, Any]]], chunk: list[Task]) -> list[Outcome]:
     try:
-        return Outcome(**fut.result())
+        return [Outcome(**r) for r in fut.result()]
     except Exception as exc:  # noqa: BLE001 - a worker died; report it and go on
-        return Outcome(task.job, task.window.id, "failed", f"worker failed: {type(exc).__name__}: {exc}",
-                       error=str(exc))
+        return [Outcome(t.job, t.window.id, "failed", f"worker failed: {type(exc).__name__}: {exc}",
+                        error=str(exc)) for t in chunk]

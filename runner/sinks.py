@@ -108,13 +108,19 @@ def stage_file(root: Path, relative: str, result: pl.LazyFrame, fmt: str,
         raise OutputError(f"cannot create output folder {final.parent}: {exc.strerror or exc}") from None
     clean_leftovers(final)
     tmp = final.parent / f".{final.name}{TMP_MARK}{os.getpid()}-{secrets.token_hex(4)}"
-    schema = result.collect_schema()
-    keys = sort_columns(schema, exclude=STAMPS)
-    ordered = result.sort(keys, nulls_last=True, maintain_order=True) if keys else result
-    if stamps:
-        ordered = ordered.with_columns([pl.lit(v).alias(k) for k, v in stamps.items()])
     kept = None
     try:
+        if not streaming:
+            # small inputs: run the query once, then order the (small) result in memory
+            collected = result.collect(engine="in-memory")
+            keys = sort_columns(collected.schema, exclude=STAMPS)
+            ordered = (collected.sort(keys, nulls_last=True, maintain_order=True) if keys and collected.height > 1
+                       else collected).lazy()
+        else:
+            keys = sort_columns(result.collect_schema(), exclude=STAMPS)
+            ordered = result.sort(keys, nulls_last=True, maintain_order=True) if keys else result
+        if stamps:
+            ordered = ordered.with_columns([pl.lit(v).alias(k) for k, v in stamps.items()])
         if fmt == "parquet" and streaming:
             ordered.sink_parquet(tmp, engine="streaming", sync_on_close="all")
             data_cols = [c for c in ordered.collect_schema().names() if c not in (stamps or {})]

@@ -102,14 +102,18 @@ def build(spec: JobSpec, inputs: dict[str, pl.LazyFrame], window: Window, root: 
 
     frames: dict[str, pl.LazyFrame] = dict(inputs)
     result: pl.LazyFrame | None = None
-    bounds = bounds_frame(to_us(window.start), to_us(window.end))
+    bounds = None
     for i, step in enumerate(spec.steps):
         where = f"step {i + 1}" + (f" ({step.name})" if step.name else "")
         if isinstance(step, SqlStep):
             used = file_functions(step.sql)
             if used:
                 raise StepError(f"{where}: SQL may not read files itself ({', '.join(used)}); declare inputs")
-            ctx = pl.SQLContext(frames={**frames, "bounds": bounds}, eager=False)
+            tables = dict(frames)
+            if "bounds" in step.sql.lower():  # built only for steps that may read it
+                bounds = bounds if bounds is not None else bounds_frame(to_us(window.start), to_us(window.end))
+                tables["bounds"] = bounds
+            ctx = pl.SQLContext(frames=tables, eager=False)
             try:
                 result = ctx.execute(step.sql)
             except pl.exceptions.PolarsError as exc:
