@@ -62,7 +62,7 @@ _RESERVED_NAMES = {"bounds"}
 
 
 class _Model(BaseModel):
-    model_config = ConfigDict(extra="forbid", populate_by_name=True, frozen=True)
+    model_config = ConfigDict(extra="forbid", populate_by_name=True, frozen=True, defer_build=True)
 
 
 class Column(_Model):

@@ -63,11 +63,17 @@ def machine() -> str:
 # ---------------------------------------------------------------- big window
 
 def make_big_csv(path: Path, rows: int) -> None:
+    """Write the data in a child process: a child forked from a large parent reports the
+    parent's resident memory as its own peak, so this process must stay small."""
+    if path.exists():
+        return
+    subprocess.run([PY, __file__, "_generate", str(path), str(rows)], check=True)
+
+
+def _generate(path: Path, rows: int) -> None:
     import numpy as np
     import polars as pl
 
-    if path.exists():
-        return
     path.parent.mkdir(parents=True, exist_ok=True)
     rng = np.random.default_rng(7)
     chunk = 5_000_000
@@ -234,6 +240,9 @@ def bench_small(base: Path, hours: int, sample: int) -> None:
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    if len(sys.argv) == 4 and sys.argv[1] == "_generate":
+        _generate(Path(sys.argv[2]), int(sys.argv[3]))
+        return
     parser.add_argument("what", choices=["big", "small"])
     parser.add_argument("--dir", type=Path, default=Path("/tmp/weir-bench"))
     parser.add_argument("--rows", type=int, default=45_000_000)
