@@ -193,3 +193,26 @@ def test_readme_change_makes_exactly_the_daily_job_and_its_readers_stale(demo_ws
     assert result.failed == 0
     assert api.stale(root, [], NOW)["windows"] == []
 
+
+
+def test_the_daily_change_check_keeps_the_last_good_output_when_a_day_arrives_half_empty(demo_ws, tmp_path):
+    root = tmp_path / "ws"
+    shutil.copytree(demo_ws, root)
+    daily = root / "state" / "warehouse" / "rides_daily" / "2026-03-31.parquet"
+    good = daily.read_bytes()
+    for hour in range(7, 20):  # a partial delivery: the busy hours of 2026-03-31 keep only their header
+        path = root / "state" / "landing" / "rides" / "2026-03-31" / f"{hour:02d}-main.csv"
+        path.write_text(path.read_text().splitlines()[0] + "\n")
+    result = api.backfill(root, ["rides_hourly"], "2026-03-31", "2026-04-01", NOW, downstream=True, workers=1)
+    failed = [o for o in result.outcomes if o.status == "failed"]
+    assert [(o.job, o.window) for o in failed] == [("rides_daily", "2026-03-31T00:00+01:00")]
+    assert "check change of rides failed" in failed[0].reason
+    assert daily.read_bytes() == good  # the swap never happened
+    # independent of weir: the drop the check saw, from pandas over the hourly outputs it read
+    hourly = pd.concat([pd.read_parquet(p) for p in
+                        (root / "state" / "warehouse" / "rides_hourly" / "2026-03-31").glob("*.parquet")])
+    before = pl.read_parquet(root / "state" / "warehouse" / "rides_daily" / "2026-03-30.parquet")["rides"].sum()
+    assert hourly["rides"].sum() < 0.4 * before
+    summary, result, _ = api.demo(root, NOW, workers=1)  # the missing data arrives
+    assert summary.written == 13 and result.failed == 0
+    assert api.stale(root, [], NOW)["windows"] == []
