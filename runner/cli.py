@@ -722,7 +722,8 @@ Next, try:
   weir report                    the state of every window: open state/report.html in a browser
   weir history rides_hourly      runs, rows read, dropped, rejected and written
   weir why rides_hourly 2026-03-25T14:00   one window explained (its late input file)
-Then change one line, e.g. in jobs/rides_daily.yaml `SUM(rides) AS rides` -> `SUM(rides) * 1 AS rides`:
+Then change one line: in jobs/rides_daily.yaml, `SUM(revenue) AS revenue` -> `ROUND(SUM(revenue), 0) AS revenue`:
+  weir impact                    before deploying: what would be recomputed, and how long
   weir stale                     exactly which windows are now out of date, and why
   weir why rides_daily 2026-03-25          the changed line, as a diff
   weir backfill rides_daily --downstream   recompute them (and what reads them)""")
