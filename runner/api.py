@@ -288,7 +288,7 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
          should_stop=None, on_outcome=None, ws: Workspace | None = None) -> TickResult:
     """Plan, then run what is due (oldest first, `max_catch_up` per job), one tick per workspace at a time."""
     from runner import gate
-    from runner.execute import RunContext
+    from runner.execute import RunContext, producer_windows
     from runner.ledger import HeldLock, owner_id
     from runner.planner import job_plans, tasks_for
     from runner.pool import Settings, run_tasks
@@ -315,7 +315,7 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
             runnable = {(i.job, i.window.key) for i in items}
             for p in plans:
                 for w in p.waiting:
-                    if any((src.job, pw.key) in runnable for src, pw in _producer_windows(ws, w)):
+                    if any((pjob, pw.key) in runnable for _, pjob, pw in producer_windows(ws, w.job, w.window)):
                         items.append(w)
             tasks = tasks_for(ws, _dependency_sorted(ws, items))
             settings = Settings(root=ws.root, ledger_url=ledger.url)
@@ -494,19 +494,6 @@ def verify(root: Path | str, jobs: list[str], ledger_url: str | None = None) -> 
         if fine:
             ledger.set_output_state(job, fine, None)
     return problems
-
-
-def _producer_windows(ws: Workspace, item) -> list[tuple[Any, Any]]:
-    from runner.graph import upstream_windows
-    from runner.spec import JobInput as _JobInput
-
-    out = []
-    for source in ws.jobs[item.job].spec.inputs.values():
-        if isinstance(source, _JobInput):
-            for pw in upstream_windows(ws.cadence(item.job), item.window, ws.cadence(source.job), source,
-                                       same_job=source.job == item.job):
-                out.append((source, pw))
-    return out
 
 
 def _dependency_sorted(ws: Workspace, items: list) -> list:

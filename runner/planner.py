@@ -71,7 +71,6 @@ def backfill(ws: Workspace, jobs: list[str], lo: datetime | None, hi: datetime |
     selected = ws.select(jobs)
     names = ws.downstream(selected) if downstream else selected
     tasks: list[Task] = []
-    index: dict[tuple[str, str], int] = {}
     not_due: dict[str, int] = {}
     extra_reach: dict[str, timedelta | None] = {}
     for name in names:
@@ -79,6 +78,7 @@ def backfill(ws: Workspace, jobs: list[str], lo: datetime | None, hi: datetime |
         if name in selected:
             start, stop = lo, hi
             reason = "in range"
+            extra_reach[name] = timedelta(0)
         else:
             reach = _reach(ws, name)
             upstream_reach = [extra_reach.get(p) for p in ws.producers(name) if p in extra_reach]
@@ -91,18 +91,22 @@ def backfill(ws: Workspace, jobs: list[str], lo: datetime | None, hi: datetime |
             start = first.start if first is not None else lo
             stop = None if (extra is None or hi is None) else hi + extra
             reason = "downstream"
-        if name in selected:
-            extra_reach[name] = timedelta(0)
         limit = at - cad.settle
         windows = cad.ending_by(limit, start) if stop is None else cad.span(start, min(stop, limit))
         for w in windows:
             if w.end <= limit:
-                index[(name, w.key)] = len(tasks)
                 tasks.append(Task(name, w, reason))
         if stop is not None and stop > limit:
             waiting = len(cad.span(start, stop)) - sum(1 for t in tasks if t.job == name)
             if waiting:
                 not_due[name] = waiting
+    link(ws, tasks)
+    return BackfillPlan(tasks, not_due)
+
+
+def link(ws: Workspace, tasks: list[Task]) -> list[Task]:
+    """Set each task's `deps`: the tasks running the producer windows it reads (those in `tasks`)."""
+    index = {t.key: i for i, t in enumerate(tasks)}
     for task in tasks:
         deps = set()
         for source in ws.jobs[task.job].spec.inputs.values():
@@ -114,7 +118,7 @@ def backfill(ws: Workspace, jobs: list[str], lo: datetime | None, hi: datetime |
                 if i is not None:
                     deps.add(i)
         task.deps = sorted(deps)
-    return BackfillPlan(tasks, not_due)
+    return tasks
 
 
 # ---------------------------------------------------------------- assessing window states
@@ -470,22 +474,7 @@ def job_plans(ws: Workspace, assessed: dict[str, pl.DataFrame], cap: bool = Fals
 
 def tasks_for(ws: Workspace, items: list[PlanItem]) -> list[Task]:
     """Tasks (with dependencies among themselves) for planned windows, in dependency order."""
-    tasks: list[Task] = []
-    index: dict[tuple[str, str], int] = {}
-    for item in items:
-        index[(item.job, item.window.key)] = len(tasks)
-        tasks.append(Task(item.job, item.window, item.reason))
-    for task in tasks:
-        deps = set()
-        for source in ws.jobs[task.job].spec.inputs.values():
-            if isinstance(source, JobInput):
-                for pw in upstream_windows(ws.cadence(task.job), task.window, ws.cadence(source.job), source,
-                                           same_job=source.job == task.job):
-                    i = index.get((source.job, pw.key))
-                    if i is not None:
-                        deps.add(i)
-        task.deps = sorted(deps)
-    return tasks
+    return link(ws, [Task(item.job, item.window, item.reason) for item in items])
 
 
 @dataclass
