@@ -242,11 +242,6 @@ def precheck(ctx: RunContext, job: str, window: Window) -> tuple[bool, Prepared 
     return prep.waiting is None and prep.fingerprint == current["fingerprint"], prep
 
 
-def is_current(ctx: RunContext, job: str, window: Window) -> bool:
-    """True when the window is done with the fingerprint it would have now (nothing to run)."""
-    return precheck(ctx, job, window)[0]
-
-
 def run_window(ctx: RunContext, job: str, window: Window, force: bool = False,
                prepared: Prepared | None = None) -> Outcome:
     """Run one window unless it is current, claimed elsewhere or waiting; retry on failure.

@@ -257,8 +257,8 @@ def _upstream(ws: Workspace, job: str, frame: pl.DataFrame, snapshot: Snapshot,
         messages, on="window_key", how="left", maintain_order="left")
 
 
-def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, now_parts: tuple[str, str],
-               probe: InputProbe | None, recheck_all: bool, assessed: dict[str, pl.DataFrame]) -> pl.DataFrame:
+def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, probe: InputProbe | None,
+               recheck_all: bool, assessed: dict[str, pl.DataFrame]) -> pl.DataFrame:
     """Every due window of `job` with its state, reasons and flags (one row per window).
 
     Columns: window, window_key, start_us, end_us, state, reasons (list), pending,
@@ -414,8 +414,7 @@ def parse_run_time(text: str) -> datetime:
     return datetime.strptime(text, "%Y-%m-%dT%H:%M:%S.%fZ").replace(tzinfo=UTC)
 
 
-def assess(ws: Workspace, at: datetime, snapshot: Snapshot, now_parts: dict[str, tuple[str, str]],
-           probe: InputProbe | None, jobs: list[str] | None = None, recheck_all: bool = False
+def assess(ws: Workspace, at: datetime, snapshot: Snapshot, probe: InputProbe | None, jobs: list[str] | None = None, recheck_all: bool = False
            ) -> dict[str, pl.DataFrame]:
     """Assess every due window of `jobs` (and, for the upstream cascade, their producers)."""
 
@@ -424,7 +423,7 @@ def assess(ws: Workspace, at: datetime, snapshot: Snapshot, now_parts: dict[str,
     assessed: dict[str, pl.DataFrame] = {}
     for name in ws.order:
         if name in needed:
-            assessed[name] = assess_job(ws, name, at, snapshot, now_parts[name], probe, recheck_all, assessed)
+            assessed[name] = assess_job(ws, name, at, snapshot, probe, recheck_all, assessed)
     return {n: assessed[n] for n in ws.order if n in set(wanted)}
 
 

@@ -180,4 +180,4 @@ def survey(ws: Workspace, ledger: Ledger, at: datetime, jobs: list[str] | None =
         spec_p, code_p = spec_and_code(ws, name)
         parts[name] = (spec_p.hash, code_p.hash)
     snap = snapshot(ws, ledger, names, parts, at, recheck_all, extras)
-    return assess(ws, at, snap, parts, InputProber(ws, as_columns=True), jobs or None, recheck_all)
+    return assess(ws, at, snap, InputProber(ws, as_columns=True), jobs or None, recheck_all)

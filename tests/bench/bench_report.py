@@ -155,9 +155,9 @@ def fill_ledger(root: Path, seed: int = 7) -> int:
                 conn.execute(sa.insert(ledger_mod.runs), runs[k:k + 5000])
                 conn.execute(sa.insert(ledger_mod.windows), wins[k:k + 5000])
         written += len(wins)
-        states[name] = ledger.states(name)
-        assessed[name] = assess_job(ws, name, AT, Snapshot(states=dict(states)), (spec_p.hash, code_p.hash),
-                                    None, False, assessed)
+        states[name] = ledger.plan_states(name, spec_p.hash, code_p.hash, upstream=True, digests=True,
+                                          extras=True)
+        assessed[name] = assess_job(ws, name, AT, Snapshot(states=dict(states)), None, False, assessed)
     # one window being worked on right now (claims expire on the real clock)
     last_key = assessed[ROOTS[0]]["window_key"][-1]
     with ledger.engine.begin() as conn:
