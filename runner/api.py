@@ -12,7 +12,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from runner.errors import UsageError
+from runner.errors import UsageError, WeirError
 from runner.spec import DatabaseInput, FileInput, JobInput
 from runner.timeutil import BadValue, format_duration, format_instant, format_utc, parse_utc
 from runner.workspace import Workspace, load_workspace
@@ -266,7 +266,16 @@ def plan(root: Path | str, jobs: list[str], at: datetime, ledger_url: str | None
             "job": p.job, "due": [_item(i) for i in p.due], "waiting": [_item(i) for i in p.waiting],
             "counts": p.counts, "late": p.late, "max_catch_up": ws.jobs[p.job].spec.max_catch_up,
         })
+    out.extend(_unplanned_entries(ws, assessed))
     return out
+
+
+def _unplanned_entries(ws: Workspace, assessed: Any) -> list[dict[str, Any]]:
+    """Plan entries for jobs that could not be planned, each with its error, in job order."""
+    unplanned = getattr(assessed, "unplanned", {})
+    return [{"job": job, "due": [], "waiting": [], "counts": {}, "late": 0,
+             "max_catch_up": ws.jobs[job].spec.max_catch_up, "error": unplanned[job]}
+            for job in ws.order if job in unplanned]
 
 
 @dataclass
@@ -276,6 +285,7 @@ class TickResult:
     outcomes: list[Any] = field(default_factory=list)
     held_back: dict[str, int] = field(default_factory=dict)
     waiting: dict[str, int] = field(default_factory=dict)
+    unplanned: dict[str, str] = field(default_factory=dict)  # job -> why it could not be planned
 
     def counts(self) -> dict[str, int]:
         out: dict[str, int] = {}
@@ -308,7 +318,7 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
             assessed = _survey(ws, ledger, at, None)
             plans = job_plans(ws, assessed, cap=True)
             items = [i for p in plans for i in p.due]
-            if (not items and not any(p.counts.get("running") for p in plans)
+            if (not items and not any(p.counts.get("running") for p in plans) and not assessed.unplanned
                     and gate.ledger_stat(ws.root, ledger_url) == before):
                 idle = assessed  # nothing due, nobody mid-window, no write while planning: may stop early
             # waiting windows whose producers run in this tick go along; they run if those finish
@@ -322,7 +332,7 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
             outcomes = run_tasks(tasks, settings, workers or 1, on_outcome, should_stop,
                                  context=RunContext(ws=ws, ledger=ledger, owner=owner))
             return TickResult(True, None, outcomes, {p.job: p.held_back for p in plans if p.held_back},
-                              {p.job: len(p.waiting) for p in plans if p.waiting})
+                              {p.job: len(p.waiting) for p in plans if p.waiting}, dict(assessed.unplanned))
     finally:
         ledger.dispose()  # closes SQLite cleanly (a checkpoint) before the gate looks at its file
         _update_gate(ws, ledger_url, idle, at, watch, seen)
@@ -345,7 +355,7 @@ def stale(root: Path | str, jobs: list[str], at: datetime, ledger_url: str | Non
             windows_out.append({"job": job, "window": row["window"], "window_utc": row["window_key"],
                                 "reasons": row["reasons"], "pending_upstream": row["pending"]})
     ranges = [r.__dict__ for r in stale_ranges(ws, assessed)]
-    return {"ranges": ranges, "windows": windows_out}
+    return {"ranges": ranges, "windows": windows_out, "unplanned": dict(assessed.unplanned)}
 
 
 def why(root: Path | str, job: str, window_id: str, at: datetime, ledger_url: str | None = None) -> dict[str, Any]:
@@ -368,7 +378,10 @@ def why(root: Path | str, job: str, window_id: str, at: datetime, ledger_url: st
         return out
     from runner.status import survey
 
-    assessed = survey(ws, ledger, at, [job], recheck_all=True, extras=True)[job]
+    surveyed = survey(ws, ledger, at, [job], recheck_all=True, extras=True)
+    if job in surveyed.unplanned:
+        raise WeirError(f"{job} could not be planned: {surveyed.unplanned[job]}")
+    assessed = surveyed[job]
     row = assessed.filter(pl.col("window_key") == window.key).row(0, named=True)
     out.update(state=row["state"], reason=row["reason"], reasons=row["reasons"], pending_upstream=row["pending"])
     state = ledger.state_row(job, window.key)
@@ -449,6 +462,8 @@ def impact(root: Path | str, at: datetime, ledger_url: str | None = None, worker
             "median_seconds": median,
             "estimated_seconds": (median * count / workers) if median is not None else None,
         })
+    out.extend({"job": job, "windows": 0, "by_reason": {}, "pending_upstream": 0, "median_seconds": None,
+                "estimated_seconds": None, "error": why} for job, why in assessed.unplanned.items())
     return out
 
 

@@ -395,10 +395,14 @@ def plan(obj: Context, jobs: tuple[str, ...], at: str | None, as_json: bool) -> 
     result = api.plan(obj.root, list(jobs), _now(at), obj.ledger)
     if as_json:
         _emit_json(result)
+        _exit_if_unplanned({p["job"]: p["error"] for p in result if "error" in p})
         return
     console = _console()
     total = 0
+    unplanned = {p["job"]: p["error"] for p in result if "error" in p}
     for p in result:
+        if "error" in p:
+            continue
         c = p["counts"]
         summary = ", ".join(f"{k} {v}" for k, v in c.items() if v) or "no due windows yet"
         late = f", late {p['late']}" if p["late"] else ""
@@ -411,6 +415,15 @@ def plan(obj: Context, jobs: tuple[str, ...], at: str | None, as_json: bool) -> 
             console.print(f"  waiting {span}  {n} window(s)  {first['reason']}")
         total += len(p["due"])
     console.print(f"{total} window(s) to run" + (" (weir tick runs them)" if total else ""))
+    _exit_if_unplanned(unplanned)
+
+
+def _exit_if_unplanned(unplanned: dict[str, str]) -> None:
+    """One line per job that could not be planned, on stderr, then exit status 1 (none: return)."""
+    for job, why in unplanned.items():
+        click.echo(f"weir: {job} could not be planned: {why}", err=True)
+    if unplanned:
+        sys.exit(1)
 
 
 @cli.command()
@@ -443,12 +456,13 @@ def tick(obj: Context, at: str | None, workers: int | None, as_json: bool) -> No
     if as_json:
         _emit_json({"ran": result.ran, "holder": result.holder, "counts": result.counts(),
                     "windows": [o.as_dict() for o in result.outcomes], "remaining": result.held_back,
-                    "waiting": result.waiting})
+                    "waiting": result.waiting, "unplanned": result.unplanned})
     else:
         click.echo(_tick_line(result, _now(at)))
         for o in result.outcomes:
             if o.status in ("done", "failed"):
                 click.echo("  " + _outcome_line(o))
+    _exit_if_unplanned(result.unplanned)
     if result.ran and any(o.status == "failed" for o in result.outcomes):
         sys.exit(1)
 
@@ -537,6 +551,7 @@ def stale(obj: Context, jobs: tuple[str, ...], at: str | None, as_json: bool) ->
     result = api.stale(obj.root, list(jobs), _now(at), obj.ledger)
     if as_json:
         _emit_json(result)
+        _exit_if_unplanned(result["unplanned"])
         return
     from rich.table import Table
 
@@ -551,6 +566,7 @@ def stale(obj: Context, jobs: tuple[str, ...], at: str | None, as_json: bool) ->
         console.print(table)
     console.print(f"{len(result['windows'])} stale window(s)" +
                   ("; weir why JOB WINDOW shows what changed" if result["windows"] else ""))
+    _exit_if_unplanned(result["unplanned"])
 
 
 @cli.command()
@@ -620,6 +636,7 @@ def impact(obj: Context, at: str | None, workers: int | None, as_json: bool) -> 
     rows = api.impact(obj.root, _now(at), obj.ledger, workers)
     if as_json:
         _emit_json(rows)
+        _exit_if_unplanned({r["job"]: r["error"] for r in rows if "error" in r})
         return
     from rich.table import Table
 
@@ -628,6 +645,8 @@ def impact(obj: Context, at: str | None, workers: int | None, as_json: bool) -> 
         table.add_column(col)
     total = 0.0
     for r in rows:
+        if "error" in r:
+            continue
         reasons = ", ".join(f"{k} {v}" for k, v in sorted(r["by_reason"].items())) or "-"
         est = r["estimated_seconds"]
         total += est or 0
@@ -635,6 +654,7 @@ def impact(obj: Context, at: str | None, workers: int | None, as_json: bool) -> 
     console = _console()
     console.print(table)
     console.print(f"{sum(r['windows'] for r in rows)} window(s) would be recomputed, about {total:.1f}s")
+    _exit_if_unplanned({r["job"]: r["error"] for r in rows if "error" in r})
 
 
 @cli.command()
@@ -766,12 +786,14 @@ def report(obj: Context, out: Path | None, metrics: Path | None, at: str | None,
     result = reporting.report(obj.root, _now(at), obj.ledger, out, metrics)
     if as_json:
         _emit_json(result)
+        _exit_if_unplanned(result["unplanned"])
         return
     counts = ", ".join(f"{k} {v}" for k, v in result["counts"].items() if v) or "no due windows yet"
     click.echo(f"wrote {result['report']} ({result['bytes'] / 1024:,.0f} KiB; {result['jobs']} job(s), "
                f"{result['windows']} due window(s): {counts})")
     if result["metrics"]:
         click.echo(f"wrote {result['metrics']} (Prometheus text format)")
+    _exit_if_unplanned(result["unplanned"])
 
 
 def main(argv: list[str] | None = None) -> None:

@@ -115,11 +115,15 @@ def metrics_text(ws: Workspace, ledger: Ledger, at: datetime, assessed: dict[str
             duration.add(last["seconds"], job=job)
             last_at.add(_epoch(last["finished_at"]), job=job)
             last_failed.add(1 if last["status"] == "failed" else 0, job=job)
+    unplanned = _Family("weir_job_unplanned", "1 for a job that could not be planned (its error is in weir plan).")
+    for job in ws.order:
+        if job in getattr(assessed, "unplanned", {}):
+            unplanned.add(1, job=job)
     nxt = next_change(ws, assessed, at)
     change = _Family("weir_next_change_timestamp_seconds",
                      "Unix time at which the clock alone next changes the plan (a window comes due or a retry is allowed).")
     change.add(nxt.timestamp() if nxt is not None else None)
     stamp = _Family("weir_metrics_timestamp_seconds", "The clock these figures are for, as Unix time.")
     stamp.add(at.timestamp())
-    families = [windows, late, to_run, success, duration, last_at, last_failed, change, stamp]
+    families = [windows, late, to_run, success, duration, last_at, last_failed, unplanned, change, stamp]
     return "".join(f.render() for f in families)

@@ -59,6 +59,8 @@ def render_many(template: str, starts_us: Any, ends_us: Any, tz: str) -> Any | N
         "end": pl.from_epoch(ends_us, time_unit="us").dt.replace_time_zone("UTC").dt.convert_time_zone(tz),
     }
     frame = pl.DataFrame(local)
+    if not fields:  # a fixed path (a lookup file): the same text for every window
+        return pl.Series("pattern", [render_fixed(template)] * frame.height, dtype=pl.String)
     parts = []
     for literal, f, spec, _ in parsed:
         if literal:
@@ -66,6 +68,11 @@ def render_many(template: str, starts_us: Any, ends_us: Any, tz: str) -> Any | N
         if f is not None:
             parts.append(pl.col(f).dt.strftime(spec))
     return frame.select(pl.concat_str(parts).alias("pattern")).to_series()
+
+
+def render_fixed(template: str) -> str:
+    """A template without placeholders as the path it names (`{{` and `}}` unescaped)."""
+    return template.format()
 
 
 def uses_end(template: str) -> bool:

@@ -414,17 +414,46 @@ def parse_run_time(text: str) -> datetime:
     return datetime.strptime(text, "%Y-%m-%dT%H:%M:%S.%fZ").replace(tzinfo=UTC)
 
 
-def assess(ws: Workspace, at: datetime, snapshot: Snapshot, probe: InputProbe | None, jobs: list[str] | None = None, recheck_all: bool = False
-           ) -> dict[str, pl.DataFrame]:
-    """Assess every due window of `jobs` (and, for the upstream cascade, their producers)."""
+class Assessment(dict[str, "pl.DataFrame"]):
+    """Job -> assessed frame, in dependency order, plus the jobs that could not be planned.
+
+    `unplanned` maps a job to why it could not be assessed: an error of its own,
+    or a producer that could not be assessed. Those jobs are left out of the
+    mapping, so one broken job never stops the planning of the others.
+    """
+
+    def __init__(self, frames: dict[str, pl.DataFrame] | None = None,
+                 unplanned: dict[str, str] | None = None):
+        super().__init__(frames or {})
+        self.unplanned: dict[str, str] = dict(unplanned or {})
+
+
+def assess(ws: Workspace, at: datetime, snapshot: Snapshot, probe: InputProbe | None, jobs: list[str] | None = None,
+           recheck_all: bool = False) -> Assessment:
+    """Assess every due window of `jobs` (and, for the upstream cascade, their producers).
+
+    A job whose assessment raises is reported in `unplanned` with the error, and so
+    is every job reading it (directly or not); the other jobs are assessed as usual.
+    """
 
     wanted = ws.select(jobs or [])
     needed = set(ws.upstream(wanted))
     assessed: dict[str, pl.DataFrame] = {}
+    unplanned: dict[str, str] = {}
     for name in ws.order:
-        if name in needed:
+        if name not in needed:
+            continue
+        broken = [p for p in ws.producers(name) if p in unplanned and p != name]
+        if broken:
+            unplanned[name] = f"its producer {broken[0]} could not be planned"
+            continue
+        try:
             assessed[name] = assess_job(ws, name, at, snapshot, probe, recheck_all, assessed)
-    return {n: assessed[n] for n in ws.order if n in set(wanted)}
+        except Exception as exc:  # noqa: BLE001 - one job's failure must not stop the others
+            unplanned[name] = f"{type(exc).__name__}: {exc}"
+    chosen = set(wanted)
+    return Assessment({n: assessed[n] for n in ws.order if n in chosen and n in assessed},
+                      {n: why for n, why in unplanned.items() if n in chosen})
 
 
 @dataclass

@@ -32,6 +32,7 @@ def report(root: Path | str, at: datetime, ledger_url: str | None = None, out: P
             "counts": {s: sum(v.counts.get(s, 0) for v in data.jobs) for s in ORDER},
             "late": sum(v.late for v in data.jobs),
             "metrics": None,
+            "unplanned": dict(getattr(data.assessed, "unplanned", {})),
         }
         if metrics is not None:
             from runner.metrics import metrics_text

@@ -135,7 +135,9 @@ class InputProber:
                 rendered = pl.Series([chr(31).join(expand(source.files, window(i))) for i in range(len(starts_us))],
                                      dtype=pl.String)
             per_input.append(rendered)
-        keys = pl.concat_str(per_input, separator=chr(30)) if len(per_input) > 1 else per_input[0]
+        keys = (pl.DataFrame({str(i): r for i, r in enumerate(per_input)})
+                .select(pl.concat_str(pl.all(), separator=chr(30)))
+                .to_series())
         unique = keys.unique(maintain_order=True).to_list()
         looked_up: dict[str, Probe] = {}
         for key in unique:

@@ -78,7 +78,7 @@ def test_one_changed_sql_line_makes_exactly_that_job_and_its_consumers_stale(ws)
     before = {job: done_runs(ws, job) for job in EXAMPLE_JOBS}
     report = cli_json(ws, "backfill", "rides_hourly", "--downstream", "--at", AT, "--workers", "2")
     assert report["counts"]["rides_hourly"] == {"done": 72}
-    assert stale_json(ws) == {"ranges": [], "windows": []}
+    assert stale_json(ws) == {"ranges": [], "windows": [], "unplanned": {}}
     assert all(not p["due"] for p in cli_json(ws, "plan", "--at", AT))
     # the data changed, so every stale window ran once more; dock_fleet did not run again
     for job in ("rides_hourly", "rides_daily", "rides_rolling_7d"):
@@ -95,7 +95,7 @@ def test_a_cosmetic_sql_change_reruns_the_producer_and_leaves_its_consumers_done
     assert first["counts"] == {"done": 72}
     second = cli_json(ws, "tick", "--at", AT)
     assert second["counts"] == {}
-    assert stale_json(ws) == {"ranges": [], "windows": []}
+    assert stale_json(ws) == {"ranges": [], "windows": [], "unplanned": {}}
     assert done_runs(ws, "rides_hourly") == {k: n + 1 for k, n in before["rides_hourly"].items()}
     for job in ("rides_daily", "rides_rolling_7d", "dock_fleet"):  # same data upstream: early cutoff
         assert done_runs(ws, job) == before[job]
