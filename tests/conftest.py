@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import textwrap
 from pathlib import Path
 
@@ -48,6 +49,21 @@ class _Main:
 
     def main(self, args, prog_name=None, **extra):
         self._main(list(args))
+
+
+@pytest.hookimpl(hookwrapper=True)
+def pytest_runtest_makereport(item, call):
+    """Under CI (`WEIR_NO_SKIPS=1`, set by .ci/run) a skipped test is a failed one.
+
+    Tests that need a real server or browser skip with a reason on a machine
+    without it; CI installs everything, so a skip there means a missing install step.
+    """
+    outcome = yield
+    report = outcome.get_result()
+    if os.environ.get("WEIR_NO_SKIPS") == "1" and report.skipped and not hasattr(report, "wasxfail"):
+        reason = report.longrepr[2] if isinstance(report.longrepr, tuple) else str(report.longrepr)
+        report.outcome = "failed"
+        report.longrepr = f"skipped under CI (WEIR_NO_SKIPS=1), which must run every test: {reason}"
 
 
 __all__ = ["cli"]
