@@ -441,3 +441,11 @@ def test_the_test_event_goes_to_every_destination_whatever_it_lists(tmp_path):
     sent = json.loads(raw)
     assert sent["kind"] == "test" and sent["job"] is None and sent["window"] is None
     assert json.loads(out.read_text()) == sent
+
+
+def test_a_command_that_leaves_something_running_in_the_background_is_done_when_it_exits():
+    """Its background child keeps the inherited standard error open; weir must not wait for it."""
+    time_ = FakeTime()
+    outcome = deliver(failed(), "pager", command("sleep 20 & exit 0", timeout="5s"),
+                      clock=time_.clock, sleep=time_.sleep)
+    assert outcome.ok and outcome.tries == 1 and outcome.reason == ""

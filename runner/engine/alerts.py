@@ -34,6 +34,7 @@ import random
 import signal
 import socket
 import subprocess
+import tempfile
 import threading
 import urllib.error
 import urllib.request
@@ -147,7 +148,8 @@ class Delivery:
 
     `tries` counts the requests or command runs made (0: none was made, because the
     destination had just failed or a secret was missing). A failed delivery has a
-    `reason` and, unless it was given up on, `retry_at`: the earliest time to try again.
+    `reason` and `retry_at`, the earliest time to try again (None only for a test
+    event that gave no result in time).
     """
 
     event_id: str
@@ -186,24 +188,28 @@ def deliver(
 
 def _run_command(event: Event, command: str, limit: timedelta, env: Mapping[str, str]) -> tuple[bool, int, str]:
     seconds = limit.total_seconds()
-    try:
-        process = subprocess.Popen(
-            ["sh", "-c", command], stdin=subprocess.PIPE, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
-            env={**env, **event_environment(event)}, start_new_session=True,
-        )
-    except OSError as exc:
-        return False, 0, f"cannot start the command: {exc}"
-    try:
-        _, err = process.communicate(body(event), timeout=seconds)
-    except subprocess.TimeoutExpired:
-        _stop(process)
-        return False, 1, f"command did not finish within {_seconds(seconds)} s and was stopped"
-    if process.returncode == 0:
-        return True, 1, ""
-    said = err.decode(errors="replace").strip().splitlines()
+    # standard error goes to a file, not a pipe: something the command leaves running in the
+    # background would hold a pipe open, and weir would wait for it until the timeout
+    with tempfile.TemporaryFile() as err:
+        try:
+            process = subprocess.Popen(
+                ["sh", "-c", command], stdin=subprocess.PIPE, stdout=subprocess.DEVNULL, stderr=err,
+                env={**env, **event_environment(event)}, start_new_session=True,
+            )
+        except OSError as exc:
+            return False, 0, f"cannot start the command: {exc}"
+        try:
+            process.communicate(body(event), timeout=seconds)
+        except subprocess.TimeoutExpired:
+            _stop(process)
+            return False, 1, f"command did not finish within {_seconds(seconds)} s and was stopped"
+        if process.returncode == 0:
+            return True, 1, ""
+        err.seek(0)
+        said = err.read().decode(errors="replace").strip().splitlines()
     tail = f": {said[-1][:300]}" if said else ""
     if process.returncode < 0:
-        return False, 1, f"command was ended by {signal.Signals(-process.returncode).name}{tail}"
+        return False, 1, f"command was ended by signal {-process.returncode}{tail}"
     return False, 1, f"command exited with status {process.returncode}{tail}"
 
 
@@ -213,10 +219,9 @@ def _stop(process: subprocess.Popen[bytes]) -> None:
         os.killpg(process.pid, signal.SIGKILL)
     process.kill()
     process.wait()
-    for stream in (process.stdin, process.stderr):
-        if stream is not None:
-            with contextlib.suppress(OSError):
-                stream.close()
+    if process.stdin is not None:
+        with contextlib.suppress(OSError):
+            process.stdin.close()
 
 
 def _post(
