@@ -11,6 +11,7 @@ from __future__ import annotations
 import hashlib
 import hmac
 import json
+import re
 import shlex
 import socket
 import threading
@@ -199,6 +200,17 @@ def test_each_event_reaches_the_webhook_in_exactly_one_signed_post_with_the_docu
             "details": {"run_id": event.details["run_id"], "reruns": 2},
         }
     assert [path for _, path, _, _ in server.requests] == ["/hooks/weir", "/hooks/weir"]
+
+
+def test_the_body_has_the_fields_docs_alerts_md_shows_in_its_example():
+    text = (ROOT / "docs" / "alerts.md").read_text()
+    example = json.loads(re.search(r"```json\n(.*?)```", text, re.S).group(1))
+    sent = json.loads(body(failed()))
+    assert list(example) == list(sent)
+    assert {k: type(v) for k, v in example.items()} == {k: type(v) for k, v in sent.items()}
+    # RFC 3339 UTC instant with Z, as the docs promise; datetime.fromisoformat reads it back (Python 3.11+)
+    assert re.fullmatch(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\dZ", example["when"])
+    assert datetime.fromisoformat(sent["when"]) == T0
 
 
 def test_a_webhook_answering_500_is_tried_again_after_the_backoff_and_the_second_try_succeeds():
@@ -441,6 +453,22 @@ def test_the_test_event_goes_to_every_destination_whatever_it_lists(tmp_path):
     sent = json.loads(raw)
     assert sent["kind"] == "test" and sent["job"] is None and sent["window"] is None
     assert json.loads(out.read_text()) == sent
+
+
+def test_the_signature_check_in_docs_alerts_md_accepts_weirs_signature_and_rejects_a_changed_body():
+    text = (ROOT / "docs" / "alerts.md").read_text()
+    (snippet,) = [block for block in re.findall(r"```python\n(.*?)```", text, re.S) if "def verified" in block]
+    scope: dict[str, object] = {}
+    exec(snippet, scope)
+    verified = scope["verified"]
+    time_ = FakeTime()
+    with receiving() as server:
+        assert deliver(failed(), "chat", webhook(server.url, secret_env="SECRET_FOR_DOCS"),
+                       clock=time_.clock, sleep=time_.sleep, environ={"SECRET_FOR_DOCS": SECRET}).ok
+    ((headers, raw),) = server.posts()
+    assert verified(raw, headers["Weir-Signature"], SECRET)
+    assert not verified(raw.replace(b"rides_hourly", b"rides_hourlx"), headers["Weir-Signature"], SECRET)
+    assert not verified(raw, headers["Weir-Signature"], SECRET + "!")
 
 
 def test_a_command_that_leaves_something_running_in_the_background_is_done_when_it_exits():

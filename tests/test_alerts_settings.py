@@ -160,3 +160,11 @@ def test_every_mistake_in_the_file_is_reported_at_once():
             chat: {webhook: 'https://h.example/', tmeout: 3s}
         """)
     assert [re.match(r"\S+:(\d+):(\d+):", line).groups() for line in found] == [("3", "34"), ("4", "43")]
+
+
+def test_docs_alerts_md_names_every_settings_key():
+    text = (ROOT / "docs" / "alerts.md").read_text()
+    documented = set(re.findall(r"`([a-z_]+)`", text))
+    keys = {info.alias or name for model in (AlertSettings, Destination) for name, info in model.model_fields.items()}
+    kinds = {str(kind) for kind in EventKind}
+    assert not (keys | kinds) - documented
