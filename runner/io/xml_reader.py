@@ -34,7 +34,6 @@ XSI_NIL = "{http://www.w3.org/2001/XMLSchema-instance}nil"
 def read_xml(path: str | Path, xsd: str | Path, element: str, label: str | None = None) -> Rows:
     """The rows of one XML file; `xsd` and `element` as for `columns_from_xsd`, `label` names the file
     in rejects and errors (the path when None). A bad XSD raises SchemaFileError, naming the XSD."""
-    import polars as pl
     import xmlschema
 
     from runner.model.schemafiles.xsd import load_schema, row_shape
