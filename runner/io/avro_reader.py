@@ -158,7 +158,7 @@ def _convert(f: AvroField, raw: list[Any]) -> tuple[pl.Series, pl.Series | None]
     if logical == "decimal":
         unscaled = [None if b is None else int.from_bytes(b, "big", signed=True) for b in raw]
         limit = 10 ** f.precision
-        bad = pl.Series([n is not None and not -limit < n < limit for n in unscaled])
+        bad = pl.Series([n is not None and not -limit < n < limit for n in unscaled], dtype=pl.Boolean)
         numbers = [None if n is None or not -limit < n < limit else Decimal(n).scaleb(-f.scale) for n in unscaled]
         return pl.Series(f.name, numbers, dtype=pl.Decimal(f.precision, f.scale)), bad
     if logical == "uuid" and f.base == "fixed":
