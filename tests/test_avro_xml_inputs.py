@@ -17,6 +17,7 @@ from pathlib import Path
 import fastavro
 import polars as pl
 import pytest
+from helpers_schemas import RIDES_XSD
 
 from runner.checks import TYPED, cast_frame, column_rules, plan_casts
 from runner.io.avro_reader import read_avro
@@ -29,15 +30,22 @@ from runner.spec import Column
 UTC = dt.UTC
 
 
-def weir_typed(frame: pl.DataFrame, decls: dict) -> pl.DataFrame:
-    """`frame` through weir's casts for the declared columns: the typed values, and no rule broken."""
+def weir_cast(frame: pl.DataFrame, decls: dict) -> tuple[pl.DataFrame, pl.Series]:
+    """`frame` through weir's casts for the declared columns: the typed values, and which rows break a
+    rule (the cast itself, nullable, values, bounds, pattern)."""
     columns = {name: Column.model_validate(decl) for name, decl in decls.items()}
     typed = cast_frame(frame, plan_casts(columns, frame.schema, "UTC"))
     rules = [r for name in columns for r in column_rules(name, columns[name], frame.schema[name], "UTC")]
-    if rules:
-        broken = typed.select(pl.any_horizontal([r.bad for r in rules]).fill_null(False)).to_series()
-        assert not broken.any(), typed.filter(broken)
-    return typed.select(pl.col(TYPED + name).alias(name) for name in columns)
+    broken = (typed.select(pl.any_horizontal([r.bad for r in rules]).fill_null(False)).to_series() if rules
+              else pl.Series([False] * typed.height))
+    return typed.select(pl.col(TYPED + name).alias(name) for name in columns), broken
+
+
+def weir_typed(frame: pl.DataFrame, decls: dict) -> pl.DataFrame:
+    """The typed values of `frame`, which must break no rule."""
+    typed, broken = weir_cast(frame, decls)
+    assert not broken.any(), typed.filter(broken)
+    return typed
 
 
 # ---------------------------------------------------------------- Avro
@@ -167,6 +175,19 @@ def test_avro_file_that_is_not_avro_or_is_cut_short_raises_naming_the_file(tmp_p
         read_avro(cut)
 
 
+def test_avro_timestamp_nanos_reads_exactly_and_weir_keeps_microseconds(tmp_path):
+    # timestamp-nanos (Avro 1.12) is a long of nanoseconds since the epoch; fastavro writes the long as given
+    schema = {"type": "record", "name": "R", "fields": [
+        {"name": "at", "type": {"type": "long", "logicalType": "timestamp-nanos"}}]}
+    nanos = 1_774_747_800_123_456_789  # 2026-03-29T01:30:00.123456789Z
+    path = write_avro(tmp_path / "n.avro", [{"at": nanos}], schema=schema)
+    frame = read_avro(path).frame
+    assert frame.schema["at"] == pl.Datetime("ns", "UTC")
+    assert frame["at"].cast(pl.Int64).to_list() == [nanos]
+    typed = weir_typed(frame, {"at": {"type": "datetime(UTC)"}})
+    assert typed["at"].to_list() == [dt.datetime(2026, 3, 29, 1, 30, 0, 123456, tzinfo=UTC)]
+
+
 def test_avro_file_without_records_has_the_columns_of_its_schema(tmp_path):
     path = write_avro(tmp_path / "empty.avro", [])
     rows = read_avro(path)
@@ -176,56 +197,20 @@ def test_avro_file_without_records_has_the_columns_of_its_schema(tmp_path):
 
 # ---------------------------------------------------------------- XML
 
-XSD = """
-<xs:schema xmlns:xs="http://www.w3.org/2001/XMLSchema">
-  <xs:element name="rides">
-    <xs:complexType><xs:sequence>
-      <xs:element name="exported" type="xs:dateTime"/>
-      <xs:element name="ride" minOccurs="0" maxOccurs="unbounded">
-        <xs:complexType>
-          <xs:sequence>
-            <xs:element name="started_at" type="xs:dateTime"/>
-            <xs:element name="zone" type="xs:string" minOccurs="0"/>
-            <xs:element name="fare">
-              <xs:simpleType><xs:restriction base="xs:string">
-                <xs:enumeration value="member"/><xs:enumeration value="casual"/>
-              </xs:restriction></xs:simpleType>
-            </xs:element>
-            <xs:element name="amount">
-              <xs:simpleType><xs:restriction base="xs:decimal">
-                <xs:totalDigits value="10"/><xs:fractionDigits value="2"/><xs:minInclusive value="0"/>
-              </xs:restriction></xs:simpleType>
-            </xs:element>
-            <xs:element name="day" type="xs:date" nillable="true"/>
-            <xs:element name="docks" type="xs:unsignedShort"/>
-            <xs:element name="electric" type="xs:boolean"/>
-            <xs:element name="km" type="xs:double"/>
-          </xs:sequence>
-          <xs:attribute name="id" use="required">
-            <xs:simpleType><xs:restriction base="xs:string"><xs:pattern value="R\\d{7}"/></xs:restriction>
-            </xs:simpleType>
-          </xs:attribute>
-        </xs:complexType>
-      </xs:element>
-    </xs:sequence></xs:complexType>
-  </xs:element>
-</xs:schema>
-"""
-
 GOOD_RIDES = [
     '<ride id="R0000001"><started_at>2026-03-29T00:30:00Z</started_at><zone> north side </zone><fare>member</fare>'
-    '<amount>1.50</amount><day>2026-03-29</day><docks>3</docks><electric>true</electric><km>2.5</km></ride>',
+    '<amount>1.50</amount><day>2026-03-29</day><docks>3</docks><electric>true</electric><km>2.5</km><card>4242</card></ride>',
     '<ride id="R0000002"><started_at> 2026-03-29T02:30:00+01:00 </started_at><fare>casual</fare>'
-    '<amount>+12</amount><day xsi:nil="true"/><docks>65535</docks><electric>0</electric><km>1E3</km></ride>',
+    '<amount>+12</amount><day xsi:nil="true"/><docks>65535</docks><electric>0</electric><km>1E3</km><voucher>7</voucher></ride>',
     '<ride id="R0000003"><started_at>2026-03-29T03:00:00.250</started_at><zone></zone><fare>member</fare>'
-    '<amount>7.500</amount><day>2026-03-30</day><docks>0</docks><electric>1</electric><km>INF</km></ride>',
+    '<amount>7.500</amount><day>2026-03-30</day><docks>0</docks><electric>1</electric><km>INF</km><card> 99 </card></ride>',
 ]
 BAD_RIDES = [
     # docks above unsignedShort's 65535; the fare outside the enumeration; a bad id and three decimal places
     '<ride id="R0000004"><started_at>2026-03-29T04:00:00Z</started_at><fare>member</fare>'
-    '<amount>1</amount><day>2026-03-29</day><docks>70000</docks><electric>true</electric><km>1</km></ride>',
+    '<amount>1</amount><day>2026-03-29</day><docks>70000</docks><electric>true</electric><km>1</km><card>1</card></ride>',
     '<ride id="bad"><started_at>2026-03-29T04:00:00Z</started_at><fare>guest</fare>'
-    '<amount>2.555</amount><day>2026-03-29</day><docks>1</docks><electric>true</electric><km>1</km></ride>',
+    '<amount>2.555</amount><day>2026-03-29</day><docks>1</docks><electric>true</electric><km>1</km><card>1</card></ride>',
 ]
 
 
@@ -239,7 +224,7 @@ def write_xml(path: Path, rides: list[str], header: str = "<exported>2026-03-30T
 @pytest.fixture
 def xsd(tmp_path) -> Path:
     path = tmp_path / "rides.xsd"
-    path.write_text(textwrap.dedent(XSD).lstrip())
+    path.write_text(textwrap.dedent(RIDES_XSD).lstrip())
     return path
 
 
@@ -334,3 +319,21 @@ def test_xml_with_a_namespace_and_a_referenced_row_element_reads_by_local_names(
     rows = read_xml(doc, xsd, "docks")
     assert rows.frame.to_dicts() == [{"name": "Praça", "bikes": "4"}]
     assert rows.rejects["source_row"].to_list() == [2] and rows.rejects["reason"][0].startswith("bikes: ")
+
+
+@pytest.mark.parametrize(("element", "value"), [
+    ("day", "2026-03-29Z"),  # xs:date may carry a zone (XSD 1.0 part 2, 3.2.9); weir's dates have none
+    ("started_at", "2026-03-29T24:00:00"),  # 24:00:00 is the end of a day in xs:dateTime (3.2.7)
+    ("started_at", "12026-03-29T00:00:00"),  # xs:dateTime years may have more than four digits
+])
+def test_xml_values_xsd_accepts_but_weirs_casts_do_not_are_bad_values_as_documented(tmp_path, xsd, element, value):
+    import xmlschema
+
+    ride = GOOD_RIDES[0].replace("<day>2026-03-29</day>", f"<day>{value}</day>") if element == "day" else \
+        GOOD_RIDES[0].replace("<started_at>2026-03-29T00:30:00Z</started_at>", f"<started_at>{value}</started_at>")
+    path = write_xml(tmp_path / "rides.xml", [ride])
+    assert xmlschema.XMLSchema10(str(xsd)).is_valid(str(path))  # valid for the XSD
+    rows = read_xml(path, xsd, "ride")
+    assert rows.rejects.height == 0 and rows.frame[element].to_list() == [value]
+    typed, broken = weir_cast(rows.frame.select(element), {element: columns_from_xsd(xsd, "ride")[element]})
+    assert broken.to_list() == [True] and typed[element].to_list() == [None]

@@ -17,6 +17,7 @@ from pathlib import Path
 import polars as pl
 import pytest
 import yaml
+from helpers_schemas import RIDES_XSD
 
 from runner.model.schemafiles import (
     SchemaFileError,
@@ -228,11 +229,13 @@ def test_proto_required_in_proto2_is_not_nullable_and_optional_is(tmp_path):
     ("map<string, int32> extras = 2;", "extras", "a map"),
     ("Stop stop = 2;", "stop", "nested message"),
     ("bytes blob = 2;", "blob", "binary"),
+    ("google.protobuf.BytesValue blob = 2;", "blob", "binary"),
 ])
 def test_proto_shapes_weir_cannot_hold_are_refused_naming_the_field_its_number_and_the_file(
         tmp_path, line, field, said):
     path = write(tmp_path / "trip.proto", f"""
         syntax = "proto3";
+        import "google/protobuf/wrappers.proto";
         message Stop {{ int32 dock = 1; }}
         message Trip {{ int32 id = 1; {line} }}
     """)
@@ -269,53 +272,6 @@ def test_proto_digest_covers_the_files_it_imports(tmp_path):
 
 
 # ---------------------------------------------------------------- XML Schema
-
-RIDES_XSD = """
-    <?xml version="1.0" encoding="UTF-8"?>
-    <xs:schema xmlns:xs="http://www.w3.org/2001/XMLSchema">
-      <xs:element name="rides">
-        <xs:complexType><xs:sequence>
-          <xs:element name="exported" type="xs:dateTime"/>
-          <xs:element name="ride" minOccurs="0" maxOccurs="unbounded">
-            <xs:complexType>
-              <xs:sequence>
-                <xs:element name="started_at" type="xs:dateTime"/>
-                <xs:element name="zone" type="xs:string" minOccurs="0"/>
-                <xs:element name="fare">
-                  <xs:simpleType><xs:restriction base="xs:string">
-                    <xs:enumeration value="member"/><xs:enumeration value="casual"/>
-                  </xs:restriction></xs:simpleType>
-                </xs:element>
-                <xs:element name="amount">
-                  <xs:simpleType><xs:restriction base="xs:decimal">
-                    <xs:totalDigits value="10"/><xs:fractionDigits value="2"/>
-                    <xs:minInclusive value="0"/><xs:maxExclusive value="500"/>
-                  </xs:restriction></xs:simpleType>
-                </xs:element>
-                <xs:element name="day" type="xs:date" nillable="true"/>
-                <xs:element name="docks" type="xs:unsignedShort"/>
-                <xs:element name="electric" type="xs:boolean"/>
-                <xs:element name="km" type="xs:double"/>
-                <xs:choice>
-                  <xs:element name="card" type="xs:token"/>
-                  <xs:element name="voucher" type="xs:positiveInteger"/>
-                </xs:choice>
-              </xs:sequence>
-              <xs:attribute name="id" use="required">
-                <xs:simpleType><xs:restriction base="xs:string"><xs:pattern value="R\\d{7}"/></xs:restriction>
-                </xs:simpleType>
-              </xs:attribute>
-              <xs:attribute name="station">
-                <xs:simpleType><xs:restriction base="xs:string"><xs:maxLength value="4"/></xs:restriction>
-                </xs:simpleType>
-              </xs:attribute>
-            </xs:complexType>
-          </xs:element>
-        </xs:sequence></xs:complexType>
-      </xs:element>
-    </xs:schema>
-"""
-
 
 def test_xsd_row_columns_map_as_documented_by_row_or_root_name(tmp_path):
     path = write(tmp_path / "rides.xsd", RIDES_XSD)
@@ -563,3 +519,13 @@ def test_schema_file_kind_comes_from_its_extension_and_names_are_required_where_
         read_schema_file(write(tmp_path / "r.proto", RIDE_PROTO))
     with pytest.raises(SchemaFileError, match="name of the element"):
         read_schema_file(write(tmp_path / "r.xsd", RIDES_XSD))
+
+
+def test_reading_schema_modules_imports_no_schema_library_until_a_file_is_read():
+    """Commands that read no schema file pay nothing for the libraries (imports are lazy)."""
+    code = ("import sys; import runner.model.schemafiles.avro, runner.model.schemafiles.proto, "
+            "runner.model.schemafiles.xsd, runner.model.schemafiles.jsonschema, runner.io.avro_reader, "
+            "runner.io.xml_reader; heavy = ['fastavro', 'google.protobuf', 'grpc_tools', 'xmlschema', "
+            "'elementpath', 'jsonschema', 'referencing', 'polars']; print([m for m in heavy if m in sys.modules])")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=120)
+    assert done.stdout.strip() == "[]"

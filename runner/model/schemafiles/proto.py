@@ -134,6 +134,9 @@ def field_column(path: Path, name: str, f: Any) -> ColumnDecl:
     nullable = bool(f.has_presence) and not required
     if kind == "TYPE_MESSAGE":
         full = f.message_type.full_name
+        if full == "google.protobuf.BytesValue":
+            raise SchemaFileError(path, name, f"{where}is BytesValue (binary): weir has no column type for "
+                                  "binary values")
         if full not in _WELL_KNOWN:
             raise SchemaFileError(path, name, f"{where}is a nested message ({full}): weir reads flat messages "
                                   "only; move its fields to the top-level message")
