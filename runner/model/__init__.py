@@ -1,1 +1,1 @@
-"""Models of what users write: job files and workspace settings (pure: pydantic, no effects)."""
+"""Models of what users write: job files, the schema files they name, and workspace settings (no effects beyond reading those files)."""
