@@ -611,11 +611,16 @@ def why(obj: Context, job: str, window_id: str, at: str | None, as_json: bool) -
         console.print(f"newest input {ing['newest_input']}, {ing['after_window_end']} after the window ended{late}")
     run = info.get("last_run")
     if run:
-        secs = f"{run['seconds']:.2f}s" if run["seconds"] is not None else "-"
-        console.print(f"last run #{run['id']} {run['status']} at {run['started_at']} in {secs}: read "
-                      f"{_n(run['rows_read']) or '-'}, dropped {_n(run['rows_dropped'])}, rejected "
-                      f"{_n(run['rows_rejected'])}, written {_n(run['rows_written'])}; fingerprint "
-                      f"{(run['fingerprint'] or '')[:12]}; code {run['code_version'] or '-'}")
+        tail = f"fingerprint {(run['fingerprint'] or '')[:12]}; code {run['code_version'] or '-'}"
+        if run["status"] == "running":  # nothing counted yet: no figures to show
+            console.print(f"last run #{run['id']} running, started at {run['started_at']}; {tail}")
+        else:
+            secs = f"{run['seconds']:.2f}s" if run["seconds"] is not None else "-"
+            figures = ", ".join(f"{label} {_n(run[key]) or '-'}" for label, key in (
+                ("read", "rows_read"), ("dropped", "rows_dropped"), ("rejected", "rows_rejected"),
+                ("written", "rows_written")))
+            console.print(f"last run #{run['id']} {run['status']} at {run['started_at']} in {secs}: "
+                          f"{figures}; {tail}")
         if run["error"]:
             console.print(f"error: {run['error']}", markup=False)
 
