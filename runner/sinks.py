@@ -213,6 +213,8 @@ def write_table(url: str, table: str, frame: pl.DataFrame, window_key: str) -> t
     import polars as pl
     import sqlalchemy as sa
 
+    from runner import engines
+
     keys = sort_columns(frame.schema)
     if keys and frame.height > 1:
         frame = frame.sort(keys, nulls_last=True, maintain_order=True)
@@ -220,7 +222,7 @@ def write_table(url: str, table: str, frame: pl.DataFrame, window_key: str) -> t
         raise OutputError("a table output may not have its own window_start column (weir keys rows by it)")
     if url.startswith("sqlite:///") and ":memory:" not in url:
         Path(url[len("sqlite:///"):]).parent.mkdir(parents=True, exist_ok=True)
-    engine = sa.create_engine(url)
+    engine = engines.engine(url)
     try:
         with engine.begin() as conn:
             md = sa.MetaData()
@@ -263,9 +265,11 @@ def read_table_digest(url: str, table: str, window_key: str) -> str | None:
     """The digest `write_table` would report for the rows now in the table (None if no table)."""
     import sqlalchemy as sa
 
-    engine = sa.create_engine(url)
+    from runner import engines
+
+    engine = engines.engine(url)
     try:
-        with engine.connect() as conn:
+        with engine.execution_options(**engines.READ).begin() as conn:
             if not sa.inspect(conn).has_table(table):
                 return None
             tbl = sa.Table(table, sa.MetaData(), autoload_with=conn)
