@@ -669,8 +669,9 @@ def impact(obj: Context, at: str | None, workers: int | None, as_json: bool) -> 
 def verify(obj: Context, jobs: tuple[str, ...], as_json: bool) -> None:
     """Re-read every done window's output and compare it with the ledger's checksum.
 
-    An output that is missing or was changed outside weir is reported and its
-    window becomes stale (by output), so the next tick or backfill restores it.
+    An output that is missing, was changed outside weir, or cannot be read (a
+    damaged file, a database file that is no longer a database) is reported and
+    its window becomes stale (by output), so the next tick or backfill restores it.
     Exit status 1 when a problem was found.
     """
     from runner import api
@@ -680,7 +681,8 @@ def verify(obj: Context, jobs: tuple[str, ...], as_json: bool) -> None:
         _emit_json(problems)
     else:
         for p in problems:
-            click.echo(f"{p['problem']:<8} {p['job']} {p['window']}  {p['output']}")
+            detail = f"  ({p['detail']})" if p.get("detail") else ""
+            click.echo(f"{p['problem']:<8} {p['job']} {p['window']}  {p['output']}{detail}")
         click.echo(f"{len(problems)} output problem(s)" + (" (now stale by output)" if problems else ""))
     if problems:
         sys.exit(1)
