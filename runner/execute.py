@@ -390,9 +390,7 @@ def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: 
         if rejected_stage is not None:
             rejected_stage.commit()
         else:
-            old = sinks.target(ws.root, rejected_path)
-            if old.exists():
-                old.unlink()
+            sinks.remove(ws.root, rejected_path)
         location, rows, digest, checksum = relative, staged.rows, staged.digest, staged.checksum
     else:
         frame = result.collect(engine="streaming")
@@ -530,14 +528,16 @@ def _fail(ctx: RunContext, job: str, window: Window, run_id: int | None, exc: Ba
     from runner.checks import CheckFailed
 
     message = error_text(exc)
+    from runner.errors import WeirError
+    from runner.sinks import open_append
+
     path = log_path(ctx.ws.root, job, window)
     try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        with open(path, "a", encoding="utf-8") as fh:
+        with open_append(ctx.ws.root, str(path.relative_to(ctx.ws.root))) as fh:
             fh.write(f"=== {utc_text()} {job} {window.id} attempt {attempt} run {run_id}\n{message}\n\n")
             fh.write("".join(traceback.format_exception(exc)))
             fh.write("\n")
-    except OSError:
+    except (OSError, WeirError):  # no log (say, state/logs leads outside the workspace); the ledger has the error
         pass
     if run_id is None:
         try:

@@ -120,28 +120,20 @@ def _finest_step(template: str) -> timedelta | None:
 
 
 def escapes(root: str | os.PathLike[str], relative: str) -> bool:
-    """True when `relative`, resolved under `root` (symbolic links followed), would land outside it."""
+    """True when `relative`, resolved under `root` (symbolic links followed), would land outside it.
+
+    Resolved afresh on every call (nothing remembered): a folder may be swapped
+    for a link between two writes. Writers check again at open time
+    (`sinks.open_folder`).
+    """
     if os.path.isabs(relative):
         return True
-    base = _realpath(str(root))
+    base = os.path.realpath(root)
     folder, name = os.path.split(os.path.normpath(os.path.join(base, relative)))
-    target = os.path.join(_realpath(folder), name)
+    target = os.path.join(os.path.realpath(folder), name)
     if os.path.islink(target):
         target = os.path.realpath(target)
     return os.path.commonpath([base, target]) != base
-
-
-_real: dict[str, str] = {}
-
-
-def _realpath(folder: str) -> str:
-    """`os.path.realpath` of a folder, remembered once it exists (output folders are few and stable)."""
-    found = _real.get(folder)
-    if found is None:
-        found = os.path.realpath(folder)
-        if os.path.isdir(folder):
-            _real[folder] = found
-    return found
 
 
 def first_collision(template: str, span: WindowSpan, limit: int = 20_000) -> tuple[Window, Window, str] | None:

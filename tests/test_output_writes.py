@@ -40,3 +40,48 @@ def test_a_table_output_is_written_while_another_client_holds_a_read_transaction
         assert reader.execute("PRAGMA journal_mode").fetchone() == ("wal",)
     finally:
         reader.close()
+
+
+def files_under(folder: Path) -> list[str]:
+    """Every file below `folder`, hidden ones included (the file system, not weir)."""
+    return sorted(p.relative_to(folder).as_posix() for p in folder.rglob("*") if p.is_file())
+
+
+FLAT_PATH = "state/warehouse/rides/{start:%Y-%m-%dT%H}.parquet"
+
+
+def test_an_output_folder_swapped_for_a_link_outside_is_refused_by_a_long_lived_process(tmp_path: Path):
+    """Hardening item 18 (outputs): a process that had written a folder once remembered its real path;
+    after the folder was swapped for a symbolic link to elsewhere, the next window was written there."""
+    from runner import api
+
+    root = write_workspace(tmp_path / "ws", {"rides_hourly": rollup_job(path=FLAT_PATH)})
+    write_rides(root, DAY)
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    assert api.run(root, "rides_hourly", "2026-03-28T05:00").status == "done"  # one process from here on
+    folder = root / "state" / "warehouse" / "rides"
+    assert [p.name for p in folder.iterdir()] == ["2026-03-28T05.parquet"]
+    folder.rename(root / "state" / "warehouse" / "rides.moved")
+    folder.symlink_to(outside, target_is_directory=True)
+
+    outcome = api.run(root, "rides_hourly", "2026-03-28T06:00")
+    assert outcome.status == "failed" and "leaves the workspace" in (outcome.error or ""), outcome
+    assert files_under(outside) == []  # nothing written there, not even a temporary file
+
+
+def test_a_log_folder_linked_outside_the_workspace_receives_no_log(tmp_path: Path):
+    """Hardening item 18 (outputs): a `state/logs` symbolic link sent failed windows' logs outside."""
+    from conftest_run import ledger_rows
+
+    root = write_workspace(tmp_path / "ws", {"rides_hourly": rollup_job(path=FLAT_PATH)})
+    write_rides(root, DAY, replace={0: {"amount": "-5.00"}})  # a negative amount: the window fails
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    (root / "state" / "logs").symlink_to(outside, target_is_directory=True)
+    report = backfill(root, "rides_hourly", lo="2026-03-28T00:00", hi="2026-03-29T00:00", expect=1)
+    failed = [w for w in report["windows"] if w["status"] == "failed"]
+    assert len(failed) == 1 and "amount" in failed[0]["error"]
+    assert files_under(outside) == []
+    # the failure is still recorded (sqlite3 reads the ledger)
+    assert [r[0] for r in ledger_rows(root, "SELECT status FROM weir_runs WHERE status = 'failed'")] == ["failed"]
