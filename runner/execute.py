@@ -441,10 +441,10 @@ def _ingested(prep: Prepared) -> str | None:
 
 
 def _db_url(root: Path, url: str | None) -> str:
-    from runner.sources import _expand_sqlite
+    from runner.paths import database_url
 
     assert url is not None
-    return _expand_sqlite(root, url)
+    return database_url(root, url)
 
 
 def _producer_frame(ws: Workspace, source: JobInput, producers: list[Producer], stats: Any) -> Any:
@@ -520,7 +520,9 @@ def error_text(exc: BaseException) -> str:
 
 
 def log_path(root: Path, job: str, window: Window) -> Path:
-    return root / "state" / "logs" / job / f"{window.id.replace('/', '_')}.log"
+    from runner.paths import LOGS
+
+    return root / LOGS / job / f"{window.id.replace('/', '_')}.log"
 
 
 def _fail(ctx: RunContext, job: str, window: Window, run_id: int | None, exc: BaseException, stats: Any,

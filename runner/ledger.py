@@ -165,7 +165,9 @@ def utc_text(instant: datetime | None = None) -> str:
 
 
 def default_url(root: Path) -> str:
-    return f"sqlite:///{root / 'state' / 'ledger.sqlite'}"
+    from runner.paths import LEDGER
+
+    return f"sqlite:///{root / LEDGER}"
 
 
 def owner_id() -> str:
