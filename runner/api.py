@@ -138,6 +138,7 @@ def run(root: Path | str, job: str, window_id: str, ledger_url: str | None = Non
         at: datetime | None = None):
     """Run one window of `job` (skipped when current unless `force`). Returns an Outcome."""
     from runner.execute import Outcome, RunContext, run_window
+    from runner.sinks import sweep_temporaries
 
     ws = load_workspace(root, thorough=False)
     ws.job(job)
@@ -147,6 +148,7 @@ def run(root: Path | str, job: str, window_id: str, ledger_url: str | None = Non
         return Outcome(job, window.id, "not due",
                        f"not due until {format_instant(window.end + cad.settle, cad.tz)}")
     ledger = open_ledger(ws.root, ledger_url)
+    sweep_temporaries(ws, at or window.end)
     return run_window(RunContext(ws=ws, ledger=ledger), job, window, force=force)
 
 
@@ -212,7 +214,9 @@ def backfill(root: Path | str, jobs: list[str], lo: str | None, hi: str | None, 
     if on_plan is not None and on_plan(plan.tasks, replaced) is False:
         return BackfillResult([], plan.not_due, replaced)
     from runner.execute import RunContext
+    from runner.sinks import sweep_temporaries
 
+    sweep_temporaries(ws, at)
     settings = Settings(root=ws.root, ledger_url=ledger.url, force=force)
     outcomes = run_tasks(plan.tasks, settings, workers or default_workers(), on_outcome, should_stop,
                          context=RunContext(ws=ws, ledger=ledger))
@@ -302,6 +306,7 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
     from runner.ledger import HeldLock, owner_id
     from runner.planner import job_plans, tasks_for
     from runner.pool import Settings, run_tasks
+    from runner.sinks import sweep_temporaries
 
     ws = ws or load_workspace(root, thorough=False)
     watch = _gate_watch(ws)
@@ -314,6 +319,7 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
         with HeldLock(ledger, "tick", owner) as lock:
             if not lock.acquired:
                 return TickResult(ran=False, holder=lock.holder())
+            sweep_temporaries(ws, at)
             before = gate.ledger_stat(ws.root, ledger_url)  # this tick only reads it from here on
             assessed = _survey(ws, ledger, at, None)
             plans = job_plans(ws, assessed, cap=True)
@@ -505,8 +511,9 @@ def _verify_output(ws: Workspace, job: str, row: dict[str, Any]) -> tuple[str | 
     """One done window's output against the ledger: (None | missing | changed | unreadable, detail)."""
     import sqlalchemy as sa
 
+    from runner.paths import database_url
     from runner.sinks import read_table_digest
-    from runner.sources import _expand_sqlite, file_sha256, table_rows
+    from runner.sources import file_sha256, table_rows
 
     out = ws.jobs[job].spec.output
     if out.path is not None:
@@ -518,7 +525,7 @@ def _verify_output(ws: Workspace, job: str, row: dict[str, Any]) -> tuple[str | 
         except OSError as exc:
             return "unreadable", exc.strerror or str(exc)
         return (None if same else "changed"), None
-    url = _expand_sqlite(ws.root, out.database)
+    url = database_url(ws.root, out.database)
     try:
         digest = read_table_digest(url, out.table, row["window_key"])
         if digest is None:

@@ -37,7 +37,11 @@ from runner.paths import escapes
 from runner.sources import file_sha256
 
 if TYPE_CHECKING:
+    from datetime import datetime
+
     import polars as pl
+
+    from runner.workspace import Workspace
 
 STAMPS = ("window_start", "window_end", "run_id", "code_version")
 TMP_MARK = ".weir-tmp-"
@@ -103,13 +107,21 @@ def target(root: Path, relative: str) -> Path:
     return root / relative
 
 
-def open_folder(root: Path, relative: str) -> int:
+def open_folder(root: Path, relative: str, create: bool = True) -> int:
     """A descriptor of the folder that will hold `relative` (created if need be), checked to lie inside
-    the workspace now: writes through it stay there whatever later happens to the path."""
+    the workspace now: writes through it stay there whatever later happens to the path.
+
+    Without `create`, a missing folder raises FileNotFoundError.
+    """
     final = target(root, relative)
     try:
-        final.parent.mkdir(parents=True, exist_ok=True)
+        if create:
+            final.parent.mkdir(parents=True, exist_ok=True)
         fd = os.open(final.parent, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0) | getattr(os, "O_CLOEXEC", 0))
+    except (FileNotFoundError, NotADirectoryError):
+        if not create:
+            raise FileNotFoundError(final.parent) from None
+        raise OutputError(f"cannot create output folder {final.parent}") from None
     except OSError as exc:
         raise OutputError(f"cannot create output folder {final.parent}: {exc.strerror or exc}") from None
     try:
@@ -123,6 +135,32 @@ def open_folder(root: Path, relative: str) -> int:
         os.close(fd)
         raise
     return fd
+
+
+def sweep_temporaries(ws: Workspace, at: datetime) -> int:
+    """Remove stale temporary files (`stale_temporary`) from the folders of every file output; return
+    how many. The folders are those that the windows starting before `at` render to (the latest
+    `graph.MOST_WINDOWS` of each job)."""
+    from runner.graph import output_span
+    from runner.paths import output_paths
+
+    folders: set[str] = set()
+    for name, job in ws.jobs.items():
+        template = job.spec.output.path
+        if template is not None:
+            _, paths = output_paths(template, output_span(ws.cadence(name), at))
+            folders.update(paths.str.replace(r"(?:^|/)[^/]*$", "").unique().to_list())
+    count = 0
+    for folder in sorted(folders):
+        try:
+            fd = open_folder(ws.root, os.path.join(folder, "-"), create=False)
+        except (FileNotFoundError, OutputError):
+            continue  # not written yet; or leading outside, where nothing is removed
+        try:
+            count += clean_leftovers(fd)
+        finally:
+            os.close(fd)
+    return count
 
 
 def open_append(root: Path, relative: str) -> IO[str]:
@@ -307,14 +345,16 @@ def write_table(url: str, table: str, frame: pl.DataFrame, window_key: str) -> t
     import sqlalchemy as sa
 
     from runner import engines
+    from runner.paths import database_file
 
     keys = sort_columns(frame.schema)
     if keys and frame.height > 1:
         frame = frame.sort(keys, nulls_last=True, maintain_order=True)
     if "window_start" in frame.columns:
         raise OutputError("a table output may not have its own window_start column (weir keys rows by it)")
-    if url.startswith("sqlite:///") and ":memory:" not in url:
-        Path(url[len("sqlite:///"):]).parent.mkdir(parents=True, exist_ok=True)
+    file = database_file(".", url)
+    if file is not None:
+        Path(file).parent.mkdir(parents=True, exist_ok=True)
     engine = engines.engine(url)
     try:
         with engine.begin() as conn:

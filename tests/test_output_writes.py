@@ -12,6 +12,7 @@ import sqlite3
 from datetime import date
 from pathlib import Path
 
+import pytest
 from conftest_run import backfill, statuses
 from helpers_data import rollup_job, write_rides, write_workspace
 
@@ -85,3 +86,67 @@ def test_a_log_folder_linked_outside_the_workspace_receives_no_log(tmp_path: Pat
     assert files_under(outside) == []
     # the failure is still recorded (sqlite3 reads the ledger)
     assert [r[0] for r in ledger_rows(root, "SELECT status FROM weir_runs WHERE status = 'failed'")] == ["failed"]
+
+
+LEAVE_A_TEMPORARY = """
+import os, sys
+from pathlib import Path
+from runner.sinks import temporary_name
+folder = Path(sys.argv[1])
+(folder / temporary_name(sys.argv[2])).write_bytes(b"PAR1 half a file")
+os._exit(9)  # a writer that died mid-write: nothing tidies up after it
+"""
+
+
+@pytest.mark.parametrize("command", ["tick", "run", "backfill"])
+def test_temporary_files_of_dead_writers_are_swept_when_a_run_or_tick_starts(tmp_path: Path, command: str):
+    """Hardening item 12: a crash during a forced run of a current window left a `.weir-tmp-*` file that
+    nothing removed (nothing re-runs a current window), and a polars scan of the folder failed."""
+    import os
+    import subprocess
+    import sys
+    import time
+
+    import polars as pl
+
+    root = write_workspace(tmp_path / "ws", {"rides_hourly": rollup_job(path=FLAT_PATH)})
+    write_rides(root, DAY)
+    assert statuses(backfill(root, "rides_hourly", lo="2026-03-28T00:00", hi="2026-03-29T00:00")) == {"done": 24}
+    folder = root / "state" / "warehouse" / "rides"
+    crashed = subprocess.run([sys.executable, "-c", LEAVE_A_TEMPORARY, str(folder), "2026-03-28T05.parquet"],
+                             timeout=120)
+    assert crashed.returncode == 9
+    (dead,) = [p for p in folder.iterdir() if p.name.startswith(".")]
+    # weir's own name, but of a writer that is alive (this process) or of another host, recently: kept
+    from runner.sinks import temporary_name
+
+    alive = folder / temporary_name("2026-03-28T06.parquet")
+    alive.write_bytes(b"PAR1 being written")
+    elsewhere = folder / ".2026-03-28T07.parquet.weir-tmp-other-host-4242-0badc0de"
+    elsewhere.write_bytes(b"PAR1 being written elsewhere")
+    abandoned = folder / ".2026-03-28T08.parquet.weir-tmp-other-host-4243-0badc0de"
+    abandoned.write_bytes(b"PAR1 left two days ago")
+    two_days_ago = time.time() - 2 * 86400
+    os.utime(abandoned, (two_days_ago, two_days_ago))
+    not_ours = folder / ".notes.weir-tmp-draft"  # not a name weir gives: never touched
+    not_ours.write_bytes(b"someone's notes")
+    with pytest.raises(pl.exceptions.PolarsError):  # polars: the folder cannot be scanned like this
+        pl.scan_parquet(folder).collect()
+
+    if command == "tick":
+        from conftest_run import cli_json
+
+        assert cli_json(root, "tick", "--at", "2026-06-01T00:00:00Z")["counts"] == {}
+    elif command == "run":
+        from conftest_run import cli
+
+        result = cli(root, "run", "rides_hourly", "--window", "2026-03-28T09:00")
+        assert result.exit_code == 0, result.stderr
+    else:  # every window current: nothing runs, the sweep still happens
+        assert statuses(backfill(root, "rides_hourly", lo="2026-03-28T00:00", hi="2026-03-29T00:00")) == {
+            "skipped": 24}
+    assert not dead.exists() and not abandoned.exists()
+    assert alive.exists() and elsewhere.exists() and not_ours.exists()
+    for kept in (alive, elsewhere, not_ours):
+        kept.unlink()
+    assert pl.scan_parquet(folder).collect().height > 0  # polars reads the folder again
