@@ -171,7 +171,17 @@ def output_paths(template: str, span: WindowSpan, most: int = 20_000) -> tuple[W
         if len(span) > most:
             span = WindowSpan(span.starts_us.tail(most), span.ends_us.tail(most), span.tz)
         rendered = pl.Series("path", [render(template, w) for w in span], dtype=pl.String)
-    return span, normalize_many(rendered)
+    return span, (normalize_many(rendered) if _may_need_normalizing(template) else rendered.alias("path"))
+
+
+_FIELD_MARKS = re.compile(r"\{(?:start|end)[^:{}]*:?|\}")
+_UNNORMAL = re.compile(r"//|(?:^|/)\.\.?(?:/|$)|/$")
+
+
+def _may_need_normalizing(template: str) -> bool:
+    """Whether a rendering could hold `//`, a `.` or `..` part, or a trailing slash: strftime codes
+    render none of them, so only the template's own text can."""
+    return bool(_UNNORMAL.search(_FIELD_MARKS.sub("", template)))
 
 
 def normalize_many(paths: pl.Series) -> pl.Series:
