@@ -528,11 +528,10 @@ def log_path(root: Path, job: str, window: Window) -> Path:
 def _fail(ctx: RunContext, job: str, window: Window, run_id: int | None, exc: BaseException, stats: Any,
           attempt: int, t0: float) -> Outcome:
     from runner.checks import CheckFailed
-
-    message = error_text(exc)
     from runner.errors import WeirError
     from runner.sinks import open_append
 
+    message = error_text(exc)
     path = log_path(ctx.ws.root, job, window)
     try:
         with open_append(ctx.ws.root, str(path.relative_to(ctx.ws.root))) as fh:

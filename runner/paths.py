@@ -50,7 +50,7 @@ def render(template: str, window: Window) -> str:
 _SAFE_CODES = re.compile(r"^(?:[^%]|%[YmdHMSjyz%])*$")
 # C99/POSIX strftime shorthands, spelled out with safe codes (the standard defines them so)
 _SHORTHANDS = {"%F": "%Y-%m-%d", "%T": "%H:%M:%S", "%R": "%H:%M", "%D": "%m/%d/%y"}
-_SHORTHAND = re.compile("|".join(_SHORTHANDS))
+_CODE = re.compile(r"%.")  # one strftime code, `%%` included (read left to right)
 
 
 def render_many(template: str, starts_us: Any, ends_us: Any, tz: str, once: bool = False) -> Any | None:
@@ -63,7 +63,7 @@ def render_many(template: str, starts_us: Any, ends_us: Any, tz: str, once: bool
     """
     import polars as pl
 
-    parsed = [(literal, f, _SHORTHAND.sub(lambda m: _SHORTHANDS[m[0]], spec) if spec else spec, c)
+    parsed = [(literal, f, _CODE.sub(lambda m: _SHORTHANDS.get(m[0], m[0]), spec) if spec else spec, c)
               for literal, f, spec, c in string.Formatter().parse(template)]
     fields = [(f, spec or "") for _, f, spec, _ in parsed if f is not None]
     if any(f.split(".")[0] not in ("start", "end") or not _SAFE_CODES.match(spec) or not spec

@@ -248,3 +248,22 @@ def test_a_sqlite_url_naming_its_driver_is_resolved_in_the_workspace_not_the_cur
     con = sqlite3.connect(root / "state" / "wh.sqlite")  # sqlite3 reads what weir wrote: 7 days, 1 row each
     assert con.execute("SELECT COUNT(*) FROM totals").fetchone() == (7,)
     con.close()
+
+
+@pytest.mark.parametrize("template", ["state/{start:%F}/{start:%T}.csv", "state/{start:%D}-{end:%R}.csv",
+                                      "state/{start:%%F}/{start:%F%z}.csv", "state/{end:%Y%m%dT%H%M%S}.csv"])
+def test_outputs_rendered_for_many_windows_at_once_equal_pythons_strftime(template: str):
+    """Hardening item 6: the vectorized renderings the comparison relies on match the C library's
+    strftime, through Python's datetime, window by window (Lisbon, across the 2026 clock changes)."""
+    from zoneinfo import ZoneInfo
+
+    from runner.paths import output_paths
+    from runner.windows import Cadence
+
+    lisbon = ZoneInfo("Europe/Lisbon")
+    cad = Cadence("1h", None, lisbon, datetime(2026, 3, 28, tzinfo=lisbon), datetime(2026, 10, 27, tzinfo=lisbon))
+    span = cad.span()
+    _, rendered = output_paths(template, span, most=10)  # `most` bounds only the window-by-window route
+    assert len(rendered) == len(span) > 10  # so every window was rendered at once
+    expected = [template.format(start=w.start.astimezone(lisbon), end=w.end.astimezone(lisbon)) for w in span]
+    assert rendered.to_list() == expected
