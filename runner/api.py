@@ -138,6 +138,7 @@ def run(root: Path | str, job: str, window_id: str, ledger_url: str | None = Non
         at: datetime | None = None):
     """Run one window of `job` (skipped when current unless `force`). Returns an Outcome."""
     from runner.execute import Outcome, RunContext, run_window
+    from runner.sinks import sweep_temporaries
 
     ws = load_workspace(root, thorough=False)
     ws.job(job)
@@ -147,6 +148,7 @@ def run(root: Path | str, job: str, window_id: str, ledger_url: str | None = Non
         return Outcome(job, window.id, "not due",
                        f"not due until {format_instant(window.end + cad.settle, cad.tz)}")
     ledger = open_ledger(ws.root, ledger_url)
+    sweep_temporaries(ws, at or window.end)
     return run_window(RunContext(ws=ws, ledger=ledger), job, window, force=force)
 
 
@@ -212,7 +214,9 @@ def backfill(root: Path | str, jobs: list[str], lo: str | None, hi: str | None, 
     if on_plan is not None and on_plan(plan.tasks, replaced) is False:
         return BackfillResult([], plan.not_due, replaced)
     from runner.execute import RunContext
+    from runner.sinks import sweep_temporaries
 
+    sweep_temporaries(ws, at)
     settings = Settings(root=ws.root, ledger_url=ledger.url, force=force)
     outcomes = run_tasks(plan.tasks, settings, workers or default_workers(), on_outcome, should_stop,
                          context=RunContext(ws=ws, ledger=ledger))
@@ -302,6 +306,7 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
     from runner.ledger import HeldLock, owner_id
     from runner.planner import job_plans, tasks_for
     from runner.pool import Settings, run_tasks
+    from runner.sinks import sweep_temporaries
 
     ws = ws or load_workspace(root, thorough=False)
     watch = _gate_watch(ws)
@@ -314,6 +319,7 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
         with HeldLock(ledger, "tick", owner) as lock:
             if not lock.acquired:
                 return TickResult(ran=False, holder=lock.holder())
+            sweep_temporaries(ws, at)
             before = gate.ledger_stat(ws.root, ledger_url)  # this tick only reads it from here on
             assessed = _survey(ws, ledger, at, None)
             plans = job_plans(ws, assessed, cap=True)
@@ -468,39 +474,29 @@ def impact(root: Path | str, at: datetime, ledger_url: str | None = None, worker
 
 
 def verify(root: Path | str, jobs: list[str], ledger_url: str | None = None) -> list[dict[str, Any]]:
-    """Re-read every done window's output; report (and mark stale by output) missing or changed ones."""
+    """Re-read every done window's output; report (and mark stale by output) missing, changed or
+    unreadable ones (a file that cannot be read, a database that is not one)."""
     import polars as pl
-
-    from runner.sinks import read_table_digest
-    from runner.sources import _expand_sqlite, file_sha256, table_rows
 
     ws = load_workspace(root, thorough=False)
     ledger = open_ledger(ws.root, ledger_url, create=False)
     problems = []
     for job in ws.select(jobs):
-        out = ws.jobs[job].spec.output
         states = ledger.states(job).filter(pl.col("state") == "done")
-        bad: dict[str, list[str]] = {"missing": [], "changed": []}
+        bad: dict[str, list[str]] = {"missing": [], "changed": [], "unreadable": []}
         fine: list[str] = []
+        broken: str | None = None  # why the job's output database cannot be read, once found
         for row in states.iter_rows(named=True):
-            if out.path is not None:
-                path = ws.root / row["output"]
-                if not path.exists():
-                    verdict = "missing"
-                elif row["output_checksum"] and file_sha256(path) != row["output_checksum"]:
-                    verdict = "changed"
-                else:
-                    verdict = None
+            if broken is None:
+                verdict, detail = _verify_output(ws, job, row)
+                if verdict == "unreadable" and ws.jobs[job].spec.output.path is None:
+                    broken = detail
             else:
-                url = _expand_sqlite(ws.root, out.database)
-                digest = read_table_digest(url, out.table, row["window_key"])
-                verdict = "missing" if digest is None else ("changed" if digest != row["output_digest"] else None)
-                if verdict == "changed" and table_rows(url, out.table, [row["window_key"]]).height == 0:
-                    verdict = "missing"  # the window's rows were deleted (a run that wrote none matches)
+                verdict, detail = "unreadable", broken
             if verdict:
                 bad[verdict].append(row["window_key"])
                 problems.append({"job": job, "window": row["window_id"], "output": row["output"],
-                                 "problem": verdict})
+                                 "problem": verdict, "detail": detail})
             elif row["output_state"]:
                 fine.append(row["window_key"])
         for verdict, keys in bad.items():
@@ -509,6 +505,44 @@ def verify(root: Path | str, jobs: list[str], ledger_url: str | None = None) -> 
         if fine:
             ledger.set_output_state(job, fine, None)
     return problems
+
+
+def _verify_output(ws: Workspace, job: str, row: dict[str, Any]) -> tuple[str | None, str | None]:
+    """One done window's output against the ledger: (None | missing | changed | unreadable, detail)."""
+    import sqlalchemy as sa
+
+    from runner.paths import database_url
+    from runner.sinks import read_table_digest
+    from runner.sources import file_sha256, table_rows
+
+    out = ws.jobs[job].spec.output
+    if out.path is not None:
+        path = ws.root / row["output"]
+        if not path.exists():
+            return "missing", None
+        try:
+            same = not row["output_checksum"] or file_sha256(path) == row["output_checksum"]
+        except OSError as exc:
+            return "unreadable", exc.strerror or str(exc)
+        return (None if same else "changed"), None
+    url = database_url(ws.root, out.database)
+    try:
+        digest = read_table_digest(url, out.table, row["window_key"])
+        if digest is None:
+            return "missing", None
+        if digest == row["output_digest"]:
+            return None, None
+        if table_rows(url, out.table, [row["window_key"]]).height == 0:
+            return "missing", None  # the window's rows were deleted (a run that wrote none matches)
+        return "changed", None
+    except sa.exc.OperationalError as exc:  # locked, cannot connect: the database is there, not reachable now
+        raise WeirError(f"cannot read table {out.table} of job {job}: {_first_line(exc)}") from None
+    except sa.exc.DatabaseError as exc:  # not a database, malformed: the output is damaged
+        return "unreadable", _first_line(exc)
+
+
+def _first_line(exc: BaseException) -> str:
+    return str(getattr(exc, "orig", None) or exc).splitlines()[0]
 
 
 def _dependency_sorted(ws: Workspace, items: list) -> list:

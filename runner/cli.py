@@ -611,11 +611,16 @@ def why(obj: Context, job: str, window_id: str, at: str | None, as_json: bool) -
         console.print(f"newest input {ing['newest_input']}, {ing['after_window_end']} after the window ended{late}")
     run = info.get("last_run")
     if run:
-        secs = f"{run['seconds']:.2f}s" if run["seconds"] is not None else "-"
-        console.print(f"last run #{run['id']} {run['status']} at {run['started_at']} in {secs}: read "
-                      f"{_n(run['rows_read']) or '-'}, dropped {_n(run['rows_dropped'])}, rejected "
-                      f"{_n(run['rows_rejected'])}, written {_n(run['rows_written'])}; fingerprint "
-                      f"{(run['fingerprint'] or '')[:12]}; code {run['code_version'] or '-'}")
+        tail = f"fingerprint {(run['fingerprint'] or '')[:12]}; code {run['code_version'] or '-'}"
+        if run["status"] == "running":  # nothing counted yet: no figures to show
+            console.print(f"last run #{run['id']} running, started at {run['started_at']}; {tail}")
+        else:
+            secs = f"{run['seconds']:.2f}s" if run["seconds"] is not None else "-"
+            figures = ", ".join(f"{label} {_n(run[key]) or '-'}" for label, key in (
+                ("read", "rows_read"), ("dropped", "rows_dropped"), ("rejected", "rows_rejected"),
+                ("written", "rows_written")))
+            console.print(f"last run #{run['id']} {run['status']} at {run['started_at']} in {secs}: "
+                          f"{figures}; {tail}")
         if run["error"]:
             console.print(f"error: {run['error']}", markup=False)
 
@@ -664,8 +669,9 @@ def impact(obj: Context, at: str | None, workers: int | None, as_json: bool) -> 
 def verify(obj: Context, jobs: tuple[str, ...], as_json: bool) -> None:
     """Re-read every done window's output and compare it with the ledger's checksum.
 
-    An output that is missing or was changed outside weir is reported and its
-    window becomes stale (by output), so the next tick or backfill restores it.
+    An output that is missing, was changed outside weir, or cannot be read (a
+    damaged file, a database file that is no longer a database) is reported and
+    its window becomes stale (by output), so the next tick or backfill restores it.
     Exit status 1 when a problem was found.
     """
     from runner import api
@@ -675,7 +681,8 @@ def verify(obj: Context, jobs: tuple[str, ...], as_json: bool) -> None:
         _emit_json(problems)
     else:
         for p in problems:
-            click.echo(f"{p['problem']:<8} {p['job']} {p['window']}  {p['output']}")
+            detail = f"  ({p['detail']})" if p.get("detail") else ""
+            click.echo(f"{p['problem']:<8} {p['job']} {p['window']}  {p['output']}{detail}")
         click.echo(f"{len(problems)} output problem(s)" + (" (now stale by output)" if problems else ""))
     if problems:
         sys.exit(1)

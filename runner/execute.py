@@ -390,9 +390,7 @@ def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: 
         if rejected_stage is not None:
             rejected_stage.commit()
         else:
-            old = sinks.target(ws.root, rejected_path)
-            if old.exists():
-                old.unlink()
+            sinks.remove(ws.root, rejected_path)
         location, rows, digest, checksum = relative, staged.rows, staged.digest, staged.checksum
     else:
         frame = result.collect(engine="streaming")
@@ -443,10 +441,10 @@ def _ingested(prep: Prepared) -> str | None:
 
 
 def _db_url(root: Path, url: str | None) -> str:
-    from runner.sources import _expand_sqlite
+    from runner.paths import database_url
 
     assert url is not None
-    return _expand_sqlite(root, url)
+    return database_url(root, url)
 
 
 def _producer_frame(ws: Workspace, source: JobInput, producers: list[Producer], stats: Any) -> Any:
@@ -522,22 +520,25 @@ def error_text(exc: BaseException) -> str:
 
 
 def log_path(root: Path, job: str, window: Window) -> Path:
-    return root / "state" / "logs" / job / f"{window.id.replace('/', '_')}.log"
+    from runner.paths import LOGS
+
+    return root / LOGS / job / f"{window.id.replace('/', '_')}.log"
 
 
 def _fail(ctx: RunContext, job: str, window: Window, run_id: int | None, exc: BaseException, stats: Any,
           attempt: int, t0: float) -> Outcome:
     from runner.checks import CheckFailed
+    from runner.errors import WeirError
+    from runner.sinks import open_append
 
     message = error_text(exc)
     path = log_path(ctx.ws.root, job, window)
     try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        with open(path, "a", encoding="utf-8") as fh:
+        with open_append(ctx.ws.root, str(path.relative_to(ctx.ws.root))) as fh:
             fh.write(f"=== {utc_text()} {job} {window.id} attempt {attempt} run {run_id}\n{message}\n\n")
             fh.write("".join(traceback.format_exception(exc)))
             fh.write("\n")
-    except OSError:
+    except (OSError, WeirError):  # no log (say, state/logs leads outside the workspace); the ledger has the error
         pass
     if run_id is None:
         try:

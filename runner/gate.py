@@ -26,7 +26,9 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-GATE = Path("state") / "tick-gate.json"
+from runner.paths import LEDGER, TICK_GATE
+
+GATE = Path(TICK_GATE)
 _PLACEHOLDER = re.compile(r"\{[^{}]*\}")
 
 
@@ -41,7 +43,7 @@ def _stat(path: str) -> tuple[int, int] | None:
 def sqlite_file(root: Path, ledger_url: str | None) -> str | None:
     """The ledger's database file when it is SQLite (default: state/ledger.sqlite)."""
     if ledger_url is None:
-        return str(root / "state" / "ledger.sqlite")
+        return str(root / LEDGER)
     prefix = "sqlite:///"
     if ledger_url.startswith(prefix) and ":memory:" not in ledger_url:
         return ledger_url[len(prefix):]

@@ -165,7 +165,9 @@ def utc_text(instant: datetime | None = None) -> str:
 
 
 def default_url(root: Path) -> str:
-    return f"sqlite:///{root / 'state' / 'ledger.sqlite'}"
+    from runner.paths import LEDGER
+
+    return f"sqlite:///{root / LEDGER}"
 
 
 def owner_id() -> str:
@@ -177,6 +179,8 @@ class Ledger:
     """A connection to one ledger database. Cheap to create; one per process."""
 
     def __init__(self, url: str, create: bool = True):
+        from runner import engines
+
         self.url = url
         self._sqlite_path: Path | None = None
         try:
@@ -184,27 +188,24 @@ class Ledger:
         except sa_exc.ArgumentError as exc:
             raise LedgerError(f"bad ledger URL {url!r}: {exc}") from None
         self.is_sqlite = parsed.get_backend_name() == "sqlite"
-        connect_args: dict[str, Any] = {}
-        if self.is_sqlite:
-            if parsed.database and parsed.database != ":memory:":
-                self._sqlite_path = Path(parsed.database)
-            connect_args = {"timeout": 60, "isolation_level": None}
+        if self.is_sqlite and parsed.database and parsed.database != ":memory:":
+            self._sqlite_path = Path(parsed.database)
         self.exists = self._sqlite_path is None or self._sqlite_path.exists()
         if not self.exists and not create:
             self.engine = None
             return
         if self._sqlite_path is not None:
-            self._sqlite_path.parent.mkdir(parents=True, exist_ok=True)
-            connect_args["timeout"] = float(os.environ.get("WEIR_LEDGER_TIMEOUT", "60"))
+            if self.exists:
+                _refuse_empty(self._sqlite_path)
+            else:
+                self._sqlite_path.parent.mkdir(parents=True, exist_ok=True)
+                _create_sqlite(self._sqlite_path)
         try:
-            self.engine = sa.create_engine(url, connect_args=connect_args, future=True)
+            self.engine = engines.engine(url)
         except (sa_exc.ArgumentError, sa_exc.NoSuchModuleError, ImportError) as exc:
             raise LedgerError(f"cannot open ledger {url!r}: {exc}") from None
-        if self.is_sqlite:
-            sa.event.listen(self.engine, "connect", _sqlite_pragmas)
-            sa.event.listen(self.engine, "begin", _sqlite_begin)
-        self._reader = self.engine.execution_options(weir_read=True)
-        self._ensure_schema()
+        self._reader = self.engine.execution_options(**engines.READ)
+        _ensure_schema(self.engine, self.url)
         self._stored_texts: set[str] = set()
 
     # ------------------------------------------------------------ plumbing
@@ -223,25 +224,6 @@ class Ledger:
         except sa_exc.OperationalError as exc:
             raise LedgerError(_explain(self.url, exc)) from None
         except sa_exc.DatabaseError as exc:
-            raise LedgerError(_explain(self.url, exc)) from None
-
-    def _ensure_schema(self) -> None:
-        try:
-            with self.engine.begin() as conn:
-                insp = sa.inspect(conn)
-                if insp.has_table(meta.name):
-                    row = conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).first()
-                    version = int(row[0]) if row else 0
-                    if version > SCHEMA_VERSION:
-                        raise LedgerError(
-                            f"the ledger at {self.url} was written by a newer weir (schema version {version}; "
-                            f"this weir knows up to {SCHEMA_VERSION}); upgrade weir to use it")
-                    if version == SCHEMA_VERSION:
-                        return
-                metadata.create_all(conn)
-                conn.execute(sa.delete(meta).where(meta.c.key == "schema_version"))
-                conn.execute(sa.insert(meta).values(key="schema_version", value=str(SCHEMA_VERSION)))
-        except (sa_exc.OperationalError, sa_exc.DatabaseError) as exc:
             raise LedgerError(_explain(self.url, exc)) from None
 
     def dispose(self) -> None:
@@ -646,21 +628,69 @@ def _state_schema() -> dict[str, Any]:
     return out
 
 
-def _sqlite_pragmas(dbapi_conn: Any, _record: Any) -> None:
-    timeout_ms = int(float(os.environ.get("WEIR_LEDGER_TIMEOUT", "60")) * 1000)
-    cur = dbapi_conn.cursor()
-    cur.execute(f"PRAGMA busy_timeout={timeout_ms}")
-    cur.execute("PRAGMA journal_mode=WAL")
-    cur.execute("PRAGMA synchronous=NORMAL")
-    cur.close()
+def _ensure_schema(engine: sa.Engine, url: str) -> None:
+    """Create the tables (or bring an older schema up to date); refuse a ledger of a newer weir."""
+    try:
+        with engine.begin() as conn:
+            insp = sa.inspect(conn)
+            if insp.has_table(meta.name):
+                row = conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).first()
+                version = int(row[0]) if row else 0
+                if version > SCHEMA_VERSION:
+                    raise LedgerError(
+                        f"the ledger at {url} was written by a newer weir (schema version {version}; "
+                        f"this weir knows up to {SCHEMA_VERSION}); upgrade weir to use it")
+                if version == SCHEMA_VERSION:
+                    return
+            metadata.create_all(conn)
+            conn.execute(sa.delete(meta).where(meta.c.key == "schema_version"))
+            conn.execute(sa.insert(meta).values(key="schema_version", value=str(SCHEMA_VERSION)))
+    except (sa_exc.OperationalError, sa_exc.DatabaseError) as exc:
+        raise LedgerError(_explain(url, exc)) from None
 
 
-def _sqlite_begin(conn: sa.Connection) -> None:
-    # pysqlite's own transaction handling is off (isolation_level=None): begin
-    # explicitly, and IMMEDIATE for writers so that a writer waits at the start
-    # instead of failing mid-transaction when another process writes.
-    read = conn.get_execution_options().get("weir_read", False)
-    conn.exec_driver_sql("BEGIN" if read else "BEGIN IMMEDIATE")
+def _create_sqlite(path: Path) -> None:
+    """Make a new SQLite ledger at `path` with its tables, appearing there at once.
+
+    The tables are written to a temporary file beside it, which is then linked
+    to `path` (a hard link fails when the name exists: a concurrent first run
+    simply uses the ledger the other made). So a ledger file weir made is never
+    empty, and an empty one can be refused as damaged.
+    """
+    import secrets
+
+    from runner import engines
+
+    tmp = path.with_name(f".{path.name}.weir-tmp-{os.getpid()}-{secrets.token_hex(4)}")
+    try:
+        made = engines.engine(f"sqlite:///{tmp}")
+        try:
+            _ensure_schema(made, f"sqlite:///{path}")
+        finally:
+            made.dispose()  # the last connection closed: the write-ahead log is folded into the file
+        try:
+            os.link(tmp, path)
+        except FileExistsError:
+            pass
+        except OSError:  # a file system without hard links: a rename, unless another process was first
+            if not path.exists():
+                os.replace(tmp, path)
+    finally:
+        for leftover in (tmp, Path(f"{tmp}-wal"), Path(f"{tmp}-shm")):
+            leftover.unlink(missing_ok=True)
+
+
+def _refuse_empty(path: Path) -> None:
+    """An existing SQLite ledger of 0 bytes is damaged (see `_create_sqlite`), not a new one."""
+    try:
+        empty = path.is_file() and path.stat().st_size == 0
+    except OSError:
+        return  # opening it reports the problem
+    if empty:
+        raise LedgerError(
+            f"the ledger {path} is empty (0 bytes): weir never leaves a ledger empty, so it was cut short "
+            "or replaced; restore it from a backup, or move it away to start afresh (every window is then "
+            "recomputed)")
 
 
 def _explain(url: str, exc: Exception) -> str:

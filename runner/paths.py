@@ -1,7 +1,8 @@
-"""Path templates: `{start:%Y-%m-%d}` and `{end:...}` rendered for a window.
+"""Path templates: `{start:%Y-%m-%d}` and `{end:...}` rendered for a window; the places weir keeps.
 
 Templates are formatted with Python's `str.format`, `start` and `end` being
-the window's bounds as aware datetimes in the job's timezone. Pure functions.
+the window's bounds as aware datetimes in the job's timezone. Pure functions
+(but `escapes`, which resolves symbolic links).
 """
 
 from __future__ import annotations
@@ -10,11 +11,26 @@ import os
 import re
 import string
 from datetime import timedelta
-from itertools import islice
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
+    from pathlib import Path
+
+    import polars as pl
+
     from runner.windows import Window, WindowSpan
+
+# What weir itself keeps in a workspace (relative paths): no output may be written there.
+LEDGER = "state/ledger.sqlite"  # the default ledger
+LOGS = "state/logs"  # failed windows' logs
+TICK_GATE = "state/tick-gate.json"  # the idle tick's gate
+REPORT = "state/report.html"  # weir report's default page
+OWNED = {
+    LEDGER: "the ledger", f"{LEDGER}-wal": "the ledger's write-ahead log", f"{LEDGER}-shm": "the ledger's shared memory",
+    f"{LEDGER}-journal": "the ledger's journal", TICK_GATE: "the idle tick's gate", REPORT: "the report",
+    "state/README.md": "the state folder's README", "state/.gitignore": "the state folder's .gitignore",
+}
+OWNED_FOLDERS = {LOGS: "the logs", "jobs": "the job files"}
 
 _STEP_CODES = [  # finest strftime code in a template -> the step that changes it
     (re.compile(r"%[SsfT]"), timedelta(seconds=1)),
@@ -32,24 +48,28 @@ def render(template: str, window: Window) -> str:
 
 
 _SAFE_CODES = re.compile(r"^(?:[^%]|%[YmdHMSjyz%])*$")
+# C99/POSIX strftime shorthands, spelled out with safe codes (the standard defines them so)
+_SHORTHANDS = {"%F": "%Y-%m-%d", "%T": "%H:%M:%S", "%R": "%H:%M", "%D": "%m/%d/%y"}
+_CODE = re.compile(r"%.")  # one strftime code, `%%` included (read left to right)
 
 
-def render_many(template: str, starts_us: Any, ends_us: Any, tz: str) -> Any | None:
+def render_many(template: str, starts_us: Any, ends_us: Any, tz: str, once: bool = False) -> Any | None:
     """Renderings of a template for many windows at once (a polars Series), or None.
 
     None when the vectorized form might differ from `render` (strftime codes
-    outside a small safe set) or when one window may need several renderings
-    (`expand`: a `{start}`-only template whose finest code steps faster than
-    the windows are long).
+    outside a small safe set) or, unless `once` (an output: one file per
+    window), when one window may need several renderings (`expand`: a
+    `{start}`-only template whose finest code steps faster than the windows are long).
     """
     import polars as pl
 
-    parsed = list(string.Formatter().parse(template))
+    parsed = [(literal, f, _CODE.sub(lambda m: _SHORTHANDS.get(m[0], m[0]), spec) if spec else spec, c)
+              for literal, f, spec, c in string.Formatter().parse(template)]
     fields = [(f, spec or "") for _, f, spec, _ in parsed if f is not None]
     if any(f.split(".")[0] not in ("start", "end") or not _SAFE_CODES.match(spec) or not spec
            for f, spec in fields):
         return None
-    if not uses_end(template):
+    if not once and not uses_end(template):
         step = _finest_step(template)
         longest = int((ends_us - starts_us).max() or 0) if len(starts_us) else 0
         if step is not None and longest > step.total_seconds() * 1_000_000:
@@ -120,36 +140,103 @@ def _finest_step(template: str) -> timedelta | None:
 
 
 def escapes(root: str | os.PathLike[str], relative: str) -> bool:
-    """True when `relative`, resolved under `root` (symbolic links followed), would land outside it."""
+    """True when `relative`, resolved under `root` (symbolic links followed), would land outside it.
+
+    Resolved afresh on every call (nothing remembered): a folder may be swapped
+    for a link between two writes. Writers check again at open time
+    (`sinks.open_folder`).
+    """
     if os.path.isabs(relative):
         return True
-    base = _realpath(str(root))
+    base = os.path.realpath(root)
     folder, name = os.path.split(os.path.normpath(os.path.join(base, relative)))
-    target = os.path.join(_realpath(folder), name)
+    target = os.path.join(os.path.realpath(folder), name)
     if os.path.islink(target):
         target = os.path.realpath(target)
     return os.path.commonpath([base, target]) != base
 
 
-_real: dict[str, str] = {}
+def output_paths(template: str, span: WindowSpan, most: int = 20_000) -> tuple[WindowSpan, pl.Series]:
+    """The normalized relative path each window of `span` writes (one rendering per window).
+
+    Vectorized where `render_many` can be; otherwise rendered one by one for
+    the latest `most` windows only, which the returned span then holds.
+    """
+    import polars as pl
+
+    from runner.windows import WindowSpan
+
+    rendered = render_many(template, span.starts_us, span.ends_us, span.tz.key, once=True)
+    if rendered is None:
+        if len(span) > most:
+            span = WindowSpan(span.starts_us.tail(most), span.ends_us.tail(most), span.tz)
+        rendered = pl.Series("path", [render(template, w) for w in span], dtype=pl.String)
+    return span, (normalize_many(rendered) if _may_need_normalizing(template) else rendered.alias("path"))
 
 
-def _realpath(folder: str) -> str:
-    """`os.path.realpath` of a folder, remembered once it exists (output folders are few and stable)."""
-    found = _real.get(folder)
-    if found is None:
-        found = os.path.realpath(folder)
-        if os.path.isdir(folder):
-            _real[folder] = found
-    return found
+_FIELD_MARKS = re.compile(r"\{(?:start|end)[^:{}]*:?|\}")
+_UNNORMAL = re.compile(r"//|(?:^|/)\.\.?(?:/|$)|/$")
 
 
-def first_collision(template: str, span: WindowSpan, limit: int = 20_000) -> tuple[Window, Window, str] | None:
-    """Two windows of `span` (the first `limit`) that render to the same path, if any."""
-    seen: dict[str, Window] = {}
-    for w in islice(span, limit):
-        path = render(template, w)
-        if path in seen:
-            return seen[path], w, path
-        seen[path] = w
+def _may_need_normalizing(template: str) -> bool:
+    """Whether a rendering could hold `//`, a `.` or `..` part, or a trailing slash: strftime codes
+    render none of them, so only the template's own text can."""
+    return bool(_UNNORMAL.search(_FIELD_MARKS.sub("", template)))
+
+
+def normalize_many(paths: pl.Series) -> pl.Series:
+    """`os.path.normpath` of many relative POSIX paths: vectorized for the usual cases (repeated
+    slashes, `.` parts), one by one for the rare path with a `..` part or a trailing slash."""
+    import polars as pl
+
+    cleaned = paths.str.replace_all(r"/+", "/").str.replace_all(r"(^|/)(?:\./)+", "${1}")
+    unusual = cleaned.str.contains(r"(?:^|/)\.\.(?:/|$)|/\.?$|^\.$")
+    if unusual.any():
+        cleaned = pl.select(pl.when(pl.lit(unusual))
+                            .then(cleaned.map_elements(os.path.normpath, return_dtype=pl.String))
+                            .otherwise(pl.lit(cleaned))).to_series()
+    return cleaned.alias("path")
+
+
+def owner_of(relative: str) -> str | None:
+    """What weir keeps at a normalized relative path (see OWNED, OWNED_FOLDERS), or None."""
+    if relative in OWNED:
+        return OWNED[relative]
+    for folder, what in OWNED_FOLDERS.items():
+        if relative == folder or relative.startswith(folder + "/"):
+            return what
     return None
+
+
+def database_url(root: str | Path, url: str) -> str:
+    """`url` with a relative SQLite database path made relative to the workspace `root`, not the
+    current folder (SQLAlchemy's URL parser reads it; other URLs come back as they were)."""
+    import sqlalchemy as sa
+
+    try:
+        parsed = sa.engine.make_url(url)
+    except sa.exc.ArgumentError:
+        return url
+    db = parsed.database
+    if parsed.get_backend_name() != "sqlite" or not db or db == ":memory:":
+        return url
+    scheme = "file:" if db.startswith("file:") else ""
+    path = db[len(scheme):]
+    if os.path.isabs(path) or path.startswith(":memory:") or "mode=memory" in str(parsed.query):
+        return url
+    return parsed.set(database=scheme + os.path.join(str(root), path)).render_as_string(hide_password=False)
+
+
+def database_file(root: str | Path, url: str) -> str | None:
+    """The normalized absolute path of a SQLite database file named by `url`, or None (not SQLite,
+    in memory, or unparsable)."""
+    import sqlalchemy as sa
+
+    try:
+        parsed = sa.engine.make_url(database_url(root, url))
+    except sa.exc.ArgumentError:
+        return None
+    db = parsed.database
+    if parsed.get_backend_name() != "sqlite" or not db or db == ":memory:" or "mode=memory" in str(parsed.query):
+        return None
+    return os.path.normpath(db.removeprefix("file:").split("?", 1)[0])

@@ -6,6 +6,8 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any
 
+from runner.paths import REPORT
+
 
 def report(root: Path | str, at: datetime, ledger_url: str | None = None, out: Path | str | None = None,
            metrics: Path | str | None = None) -> dict[str, Any]:
@@ -24,7 +26,7 @@ def report(root: Path | str, at: datetime, ledger_url: str | None = None, out: P
     try:
         data = collect(ws, ledger, at)
         page = render(data)
-        target = Path(out) if out is not None else ws.state_dir / "report.html"
+        target = Path(out) if out is not None else ws.path(REPORT)
         write_report(target, page)
         result: dict[str, Any] = {
             "report": str(target), "bytes": len(page.encode("utf-8")), "jobs": len(data.jobs),

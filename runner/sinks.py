@@ -1,11 +1,19 @@
 """Outputs with atomic replace: files through a hidden temporary file, tables in one transaction.
 
 File outputs are written in canonical row order (sorted by every column) to
-`.NAME.weir-tmp-PID-RANDOM` in the target folder, flushed and fsynced. The
+`.NAME.weir-tmp-HOST-PID-RANDOM` in the target folder, flushed and fsynced. The
 caller then checks the staged data and either commits it (`os.replace` onto
 the final name, then an fsync of the folder) or discards it. Readers see the
-old file or the new one, never a partial or doubled one. Leftover temporary
-files of a crashed run are removed before the next write of the same output.
+old file or the new one, never a partial or doubled one. Temporary files that
+no live process writes any more (see `stale_temporary`) are removed before
+the next write of the same output and by `sweep_temporaries` when a run or
+tick starts.
+
+Every write goes through a descriptor of the output folder opened and checked
+just before: the folder resolves inside the workspace at that moment (symbolic
+links followed), and the temporary file, the rename and the removals act on
+that descriptor (`openat`-style), so a folder swapped for a link to elsewhere
+later cannot send an output, or a removal, outside the workspace.
 
 Table outputs delete the window's rows and insert the new ones in one
 transaction, keyed by a `window_start` column (the window's UTC start).
@@ -15,10 +23,13 @@ from __future__ import annotations
 
 import contextlib
 import os
+import re
 import secrets
-from dataclasses import dataclass
+import socket
+import time
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import IO, TYPE_CHECKING, Any
 
 from runner.errors import WeirError
 from runner.fingerprint import batches_digest, frame_digest, sort_columns
@@ -26,10 +37,18 @@ from runner.paths import escapes
 from runner.sources import file_sha256
 
 if TYPE_CHECKING:
+    from datetime import datetime
+
     import polars as pl
+
+    from runner.workspace import Workspace
 
 STAMPS = ("window_start", "window_end", "run_id", "code_version")
 TMP_MARK = ".weir-tmp-"
+# .NAME.weir-tmp-HOST-PID-RANDOM (HOST- absent in names written before it was added)
+_TMP_NAME = re.compile(r"^\..+\.weir-tmp-(?:(?P<host>[A-Za-z0-9._-]+)-)?(?P<pid>\d+)-[0-9a-f]{8}$")
+STALE_AFTER = 24 * 3600  # seconds: a temporary file untouched this long is no live write's
+_FLAGS = getattr(os, "O_CLOEXEC", 0) | getattr(os, "O_NOFOLLOW", 0)
 
 
 class OutputError(WeirError):
@@ -38,7 +57,7 @@ class OutputError(WeirError):
 
 @dataclass
 class Staged:
-    """A written but not yet visible output file."""
+    """A written but not yet visible output file, in a folder held open (`folder`, a descriptor)."""
 
     final: Path
     tmp: Path
@@ -49,6 +68,7 @@ class Staged:
     size: int
     location: str
     frame: pl.DataFrame | None = None  # the written rows, kept when they were computed in memory
+    folder: int = field(default=-1, repr=False)
 
     def scan(self) -> pl.LazyFrame:
         """The staged rows (from memory when kept, else read back from the temporary file)."""
@@ -59,12 +79,25 @@ class Staged:
         return pl.scan_parquet(self.tmp) if self.fmt == "parquet" else pl.scan_csv(self.tmp)
 
     def commit(self) -> None:
-        os.replace(self.tmp, self.final)
-        _fsync_dir(self.final.parent)
+        """Move the file onto its final name, inside the folder checked when it was staged."""
+        try:
+            os.replace(self.tmp.name, self.final.name, src_dir_fd=self.folder, dst_dir_fd=self.folder)
+            with contextlib.suppress(OSError):
+                os.fsync(self.folder)
+        finally:
+            self._close()
 
     def discard(self) -> None:
-        with contextlib.suppress(FileNotFoundError):
-            self.tmp.unlink()
+        try:
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(self.tmp.name, dir_fd=self.folder)
+        finally:
+            self._close()
+
+    def _close(self) -> None:
+        if self.folder >= 0:
+            os.close(self.folder)
+            self.folder = -1
 
 
 def target(root: Path, relative: str) -> Path:
@@ -74,19 +107,131 @@ def target(root: Path, relative: str) -> Path:
     return root / relative
 
 
-def clean_leftovers(final: Path) -> int:
-    """Remove temporary files a crashed run left beside `final`; return how many."""
+def open_folder(root: Path, relative: str, create: bool = True) -> int:
+    """A descriptor of the folder that will hold `relative` (created if need be), checked to lie inside
+    the workspace now: writes through it stay there whatever later happens to the path.
+
+    Without `create`, a missing folder raises FileNotFoundError.
+    """
+    final = target(root, relative)
+    try:
+        if create:
+            final.parent.mkdir(parents=True, exist_ok=True)
+        fd = os.open(final.parent, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0) | getattr(os, "O_CLOEXEC", 0))
+    except (FileNotFoundError, NotADirectoryError):
+        if not create:
+            raise FileNotFoundError(final.parent) from None
+        raise OutputError(f"cannot create output folder {final.parent}") from None
+    except OSError as exc:
+        raise OutputError(f"cannot create output folder {final.parent}: {exc.strerror or exc}") from None
+    try:
+        real = os.path.realpath(final.parent)
+        base = os.path.realpath(root)
+        held, there = os.fstat(fd), os.stat(real)
+        if os.path.commonpath([base, real]) != base or (held.st_dev, held.st_ino) != (there.st_dev, there.st_ino):
+            raise OutputError(f"output folder {final.parent} leaves the workspace {root} (a symbolic link?); "
+                              "refusing to write there")
+    except BaseException:
+        os.close(fd)
+        raise
+    return fd
+
+
+def sweep_temporaries(ws: Workspace, at: datetime) -> int:
+    """Remove stale temporary files (`stale_temporary`) from the folders of every file output; return
+    how many. The folders are those that the windows starting before `at` render to (the latest
+    `graph.MOST_WINDOWS` of each job)."""
+    from runner.graph import output_span
+    from runner.paths import output_paths
+
+    folders: set[str] = set()
+    for name, job in ws.jobs.items():
+        template = job.spec.output.path
+        if template is not None:
+            _, paths = output_paths(template, output_span(ws.cadence(name), at))
+            folders.update(paths.str.replace(r"(?:^|/)[^/]*$", "").unique().to_list())
     count = 0
-    if not final.parent.is_dir():
+    for folder in sorted(folders):
+        try:
+            fd = open_folder(ws.root, os.path.join(folder, "-"), create=False)
+        except (FileNotFoundError, OutputError):
+            continue  # not written yet; or leading outside, where nothing is removed
+        try:
+            count += clean_leftovers(fd)
+        finally:
+            os.close(fd)
+    return count
+
+
+def open_append(root: Path, relative: str) -> IO[str]:
+    """A text file inside the workspace opened for appending (a log), never through a link leaving it."""
+    folder = open_folder(root, relative)
+    try:
+        fd = os.open(os.path.basename(relative), os.O_WRONLY | os.O_APPEND | os.O_CREAT | _FLAGS, 0o666,
+                     dir_fd=folder)
+    finally:
+        os.close(folder)
+    return os.fdopen(fd, "a", encoding="utf-8")
+
+
+def remove(root: Path, relative: str) -> bool:
+    """Remove an output file (inside the workspace only); False when there was none."""
+    folder = open_folder(root, relative)
+    try:
+        os.unlink(os.path.basename(relative), dir_fd=folder)
+        return True
+    except FileNotFoundError:
+        return False
+    finally:
+        os.close(folder)
+
+
+def _host() -> str:
+    return re.sub(r"[^A-Za-z0-9.-]", "_", socket.gethostname())[:64] or "host"
+
+
+def temporary_name(final_name: str) -> str:
+    """The name of a new temporary file for `final_name`: it says which host and process write it."""
+    return f".{final_name}{TMP_MARK}{_host()}-{os.getpid()}-{secrets.token_hex(4)}"
+
+
+def stale_temporary(name: str, mtime: float, now: float) -> bool:
+    """True for weir's own temporary file name that no live process is writing any more.
+
+    Its process, of this host, has ended; or (another host's, or a reused
+    process id) it was last written over `STALE_AFTER` seconds ago.
+    """
+    from runner.ledger import _gone
+
+    found = _TMP_NAME.match(name)
+    if found is None:
+        return False
+    if now - mtime > STALE_AFTER:
+        return True
+    host = found["host"]
+    return (host is None or host == _host()) and _gone(f"{socket.gethostname()}:{found['pid']}:0")
+
+
+def clean_leftovers(folder: int | str | Path, prefix: str = "", now: float | None = None) -> int:
+    """Remove stale temporary files (whose names start with `prefix`) from a folder (a path or a
+    descriptor); return how many."""
+    now = time.time() if now is None else now
+    try:
+        entries = list(os.scandir(folder))
+    except (FileNotFoundError, NotADirectoryError):
         return 0
-    prefix = f".{final.name}{TMP_MARK}"
-    for entry in os.scandir(final.parent):
-        if entry.name.startswith(prefix):
-            try:
-                os.unlink(entry.path)
+    dir_fd = folder if isinstance(folder, int) else None
+    count = 0
+    for entry in entries:
+        if TMP_MARK not in entry.name or not entry.name.startswith(prefix):
+            continue
+        try:
+            if entry.is_file(follow_symlinks=False) and stale_temporary(
+                    entry.name, entry.stat(follow_symlinks=False).st_mtime, now):
+                os.unlink(entry.name if dir_fd is not None else entry.path, dir_fd=dir_fd)
                 count += 1
-            except FileNotFoundError:
-                pass
+        except FileNotFoundError:
+            pass
     return count
 
 
@@ -98,36 +243,47 @@ def stage_file(root: Path, relative: str, result: pl.LazyFrame, fmt: str,
     the file, then read the file back for its row count and digest (memory
     stays bounded whatever the size). Otherwise (small inputs) the query runs
     once in memory and the rows, digest and later checks all use that frame.
+    The file is created and written through the checked folder descriptor.
     """
     import polars as pl
 
     final = target(root, relative)
-    try:
-        final.parent.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise OutputError(f"cannot create output folder {final.parent}: {exc.strerror or exc}") from None
-    clean_leftovers(final)
-    tmp = final.parent / f".{final.name}{TMP_MARK}{os.getpid()}-{secrets.token_hex(4)}"
+    folder = open_folder(root, relative)
+    tmp = final.parent / temporary_name(final.name)
     kept = None
     try:
-        if not streaming:
-            # small inputs: run the query once, then order the (small) result in memory
-            collected = result.collect(engine="in-memory")
-            keys = sort_columns(collected.schema, exclude=STAMPS)
-            ordered = (collected.sort(keys, nulls_last=True, maintain_order=True) if keys and collected.height > 1
-                       else collected).lazy()
-        else:
-            keys = sort_columns(result.collect_schema(), exclude=STAMPS)
-            ordered = result.sort(keys, nulls_last=True, maintain_order=True) if keys else result
-        if stamps:
-            ordered = ordered.with_columns([pl.lit(v).alias(k) for k, v in stamps.items()])
-        if fmt == "parquet" and streaming:
-            ordered.sink_parquet(tmp, engine="streaming", sync_on_close="all")
+        clean_leftovers(folder, prefix=f".{final.name}{TMP_MARK}")
+        with os.fdopen(os.open(tmp.name, os.O_WRONLY | os.O_CREAT | os.O_EXCL | _FLAGS, 0o666, dir_fd=folder),
+                       "wb") as fh:
+            if not streaming:
+                # small inputs: run the query once, then order the (small) result in memory
+                collected = result.collect(engine="in-memory")
+                keys = sort_columns(collected.schema, exclude=STAMPS)
+                ordered = (collected.sort(keys, nulls_last=True, maintain_order=True)
+                           if keys and collected.height > 1 else collected).lazy()
+            else:
+                keys = sort_columns(result.collect_schema(), exclude=STAMPS)
+                ordered = result.sort(keys, nulls_last=True, maintain_order=True) if keys else result
+            if stamps:
+                ordered = ordered.with_columns([pl.lit(v).alias(k) for k, v in stamps.items()])
+            if fmt == "parquet" and streaming:
+                ordered.sink_parquet(fh, engine="streaming")
+                frame = None
+            else:
+                frame = ordered.collect(engine="streaming" if streaming else "in-memory")
+                if fmt == "parquet":
+                    frame.write_parquet(fh)
+                else:
+                    frame.write_csv(fh)
+            fh.flush()
+            os.fsync(fh.fileno())
+            size = os.fstat(fh.fileno()).st_size
+        if frame is None:  # streamed: count and hash the rows in one pass over the written file
             data_cols = [c for c in ordered.collect_schema().names() if c not in (stamps or {})]
             rows = 0
             batches = pl.scan_parquet(tmp).select(data_cols).collect_batches(engine="streaming")
 
-            def counted():  # one pass over the file: count the rows while hashing them
+            def counted():
                 nonlocal rows
                 for batch in batches:
                     rows += batch.height
@@ -135,49 +291,24 @@ def stage_file(root: Path, relative: str, result: pl.LazyFrame, fmt: str,
 
             digest = batches_digest(pl.scan_parquet(tmp).select(data_cols).collect_schema(), counted())
         else:
-            frame = ordered.collect(engine="streaming" if streaming else "in-memory")
             rows = frame.height
             data = frame.drop([c for c in (stamps or {}) if c in frame.columns])
             digest = batches_digest(data.schema, [data])  # already in canonical order
-            with open(tmp, "wb") as fh:
-                if fmt == "parquet":
-                    frame.write_parquet(fh)
-                else:
-                    frame.write_csv(fh)
-                fh.flush()
-                os.fsync(fh.fileno())
             kept = frame
-    except OSError as exc:
-        _unlink(tmp)
-        raise OutputError(f"cannot write output {relative}: {exc.strerror or exc}") from None
-    except BaseException:
-        _unlink(tmp)
+        checksum = file_sha256(tmp)
+    except BaseException as exc:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp.name, dir_fd=folder)
+        os.close(folder)
+        if isinstance(exc, OSError):
+            raise OutputError(f"cannot write output {relative}: {exc.strerror or exc}") from None
         raise
-    size = tmp.stat().st_size
-    return Staged(final, tmp, fmt, rows, digest, file_sha256(tmp), size, relative, kept)
+    return Staged(final, tmp, fmt, rows, digest, checksum, size, relative, kept, folder)
 
 
 def stage_frame_file(root: Path, relative: str, frame: pl.DataFrame) -> Staged:
     """Stage an in-memory frame as Parquet (used for rejected rows)."""
     return stage_file(root, relative, frame.lazy(), "parquet", streaming=False)
-
-
-def _unlink(path: Path) -> None:
-    with contextlib.suppress(FileNotFoundError):
-        path.unlink()
-
-
-def _fsync_dir(folder: Path) -> None:
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
 
 
 # ---------------------------------------------------------------- tables
@@ -213,14 +344,18 @@ def write_table(url: str, table: str, frame: pl.DataFrame, window_key: str) -> t
     import polars as pl
     import sqlalchemy as sa
 
+    from runner import engines
+    from runner.paths import database_file
+
     keys = sort_columns(frame.schema)
     if keys and frame.height > 1:
         frame = frame.sort(keys, nulls_last=True, maintain_order=True)
     if "window_start" in frame.columns:
         raise OutputError("a table output may not have its own window_start column (weir keys rows by it)")
-    if url.startswith("sqlite:///") and ":memory:" not in url:
-        Path(url[len("sqlite:///"):]).parent.mkdir(parents=True, exist_ok=True)
-    engine = sa.create_engine(url)
+    file = database_file(".", url)
+    if file is not None:
+        Path(file).parent.mkdir(parents=True, exist_ok=True)
+    engine = engines.engine(url)
     try:
         with engine.begin() as conn:
             md = sa.MetaData()
@@ -263,9 +398,11 @@ def read_table_digest(url: str, table: str, window_key: str) -> str | None:
     """The digest `write_table` would report for the rows now in the table (None if no table)."""
     import sqlalchemy as sa
 
-    engine = sa.create_engine(url)
+    from runner import engines
+
+    engine = engines.engine(url)
     try:
-        with engine.connect() as conn:
+        with engine.execution_options(**engines.READ).begin() as conn:
             if not sa.inspect(conn).has_table(table):
                 return None
             tbl = sa.Table(table, sa.MetaData(), autoload_with=conn)

@@ -593,10 +593,9 @@ def database_frame(root: Path, name: str, source: DatabaseInput, window: Window,
 
 def _expand_sqlite(root: Path, url: str) -> str:
     """Relative SQLite paths are relative to the workspace, not the current folder."""
-    prefix = "sqlite:///"
-    if url.startswith(prefix) and not url.startswith(prefix + "/") and ":memory:" not in url:
-        return prefix + str(root / url[len(prefix):])
-    return url
+    from runner.paths import database_url
+
+    return database_url(root, url)
 
 
 def _mask(url: str) -> str:

@@ -126,8 +126,9 @@ def load_workspace(root: Path | str = ".", resolve_sql: bool = True, thorough: b
     Raises SpecProblems listing every error (job files, graph, SQL) together.
     Warnings (advice that does not stop a run) are kept on the workspace.
     `thorough=False` skips the checks that only `weir check` needs to be fast
-    about (output path collisions, static SQL resolution): commands that run
-    windows start sooner and would meet those problems as run failures.
+    about (static SQL resolution, advice): commands that run windows start
+    sooner and would meet those problems as run failures. Outputs are checked
+    by every load (two outputs aliasing each other must never run).
     """
     root = Path(root).resolve()
     files = job_files(root)
@@ -145,11 +146,9 @@ def load_workspace(root: Path | str = ".", resolve_sql: bool = True, thorough: b
             problems.append(Problem(_display(file), 1, 1, "", f"job {job.name!r} is defined twice ({jobs[job.name].file})"))
             continue
         jobs[job.name] = job
-    problems.extend(graphs.graph_problems(jobs))
+    problems.extend(graphs.graph_problems(jobs, root=root))
     warnings: list[Problem] = []
     schemas: dict | None = {} if thorough and resolve_sql else None
-    if thorough:
-        problems.extend(_output_collisions(jobs))
     # Every problem of a run is reported together; SQL is resolved in dependency
     # order, which needs a graph without cycles (cycles are reported above).
     if thorough and resolve_sql and _acyclic(jobs):
@@ -170,28 +169,6 @@ def _acyclic(jobs: dict[str, Job]) -> bool:
     except ValueError:
         return False
     return True
-
-
-def _output_collisions(jobs: dict[str, Job]) -> list[Problem]:
-    """Output templates that would write two windows to one file (a silent overwrite)."""
-    from datetime import timedelta
-
-    from runner.paths import first_collision
-
-    problems = []
-    for _, job in sorted(jobs.items()):
-        path = job.spec.output.path
-        if path is None:
-            continue
-        cad = Cadence.of(job.spec.window)
-        hi = cad.end if cad.end is not None else cad.start + timedelta(days=400)
-        clash = first_collision(path, cad.span(None, hi))
-        if clash:
-            a, b, rendered = clash
-            problems.append(job.problem(("output", "path"), (
-                f"windows {a.id} and {b.id} would both write {rendered}; add finer fields to the "
-                "template (for hourly windows on fall-back days include the offset, %z)")))
-    return problems
 
 
 def _sql_problems(jobs: dict[str, Job], schemas: dict) -> list[Problem]:

@@ -153,6 +153,21 @@ def test_a_corrupt_ledger_is_reported_and_left_as_it_is(ws):
     assert snapshot(ws) == before
 
 
+def test_an_empty_ledger_file_is_refused_by_every_command_and_left_as_it_is(ws):
+    """Hardening item 15: a 0-byte ledger (a file cut to nothing) read as an empty ledger recomputed everything."""
+    path = ledger_file(ws)
+    for suffix in ("-wal", "-shm"):
+        Path(str(path) + suffix).unlink(missing_ok=True)
+    path.write_bytes(b"")
+    before = snapshot(ws)
+    commands = [*EVERY_COMMAND, ("backfill", "rides_hourly", "--at", AT), ("run", "rides_hourly", "--window", WINDOW)]
+    for result in run_all(ws, commands):
+        assert_one_clear_line(result, str(path), "empty")
+        assert result.returncode == 2
+    assert snapshot(ws) == before
+    assert path.stat().st_size == 0 and not Path(str(path) + "-wal").exists()
+
+
 HOLD = """
 import sqlite3, sys
 holder = sqlite3.connect(sys.argv[1], isolation_level=None)

@@ -375,8 +375,11 @@ def test_backfills_killed_at_random_moments_resume_to_a_clean_runs_outputs(tmp_p
 def test_next_run_of_a_window_removes_its_leftover_temporary_files(rides_ws: Path):
     backfill(rides_ws, "rides_hourly", lo=LO, hi=HI)
     final = hourly_file(rides_ws, DAY, 5)
-    mine = final.parent / f".{final.name}{TMP_MARK}4242-0badc0de"
-    other = final.parent / f".06.parquet{TMP_MARK}4242-0badc0de"
+    ended = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True,
+                           text=True, timeout=60)
+    dead = int(ended.stdout)  # the process id of a writer that has ended (names without a host: older weir)
+    mine = final.parent / f".{final.name}{TMP_MARK}{dead}-0badc0de"
+    other = final.parent / f".06.parquet{TMP_MARK}{dead}-0badc0de"
     for leftover in (mine, other):
         leftover.write_bytes(b"PAR1 half a file")
     before = final.read_bytes()
@@ -384,7 +387,7 @@ def test_next_run_of_a_window_removes_its_leftover_temporary_files(rides_ws: Pat
     result = cli(rides_ws, "run", "rides_hourly", "--window", window_id(DAY, 5), "--force")
     assert result.exit_code == 0, result.output
     assert not mine.exists()
-    assert other.exists()  # another window's leftovers wait for that window's run
+    assert not other.exists()  # a run sweeps every output folder (hardening item 12)
     assert final.read_bytes() == before
 
 

@@ -284,3 +284,53 @@ def test_why_does_not_report_a_database_input_as_removed_when_nothing_changed(tm
     assert cli_json(root, "tick", "--at", AT)["counts"] == {"done": 2}
     info = cli_json(root, "why", "moves", "2026-03-24", "--at", AT)
     assert info["state"] == "done" and info["changes"] == {}
+
+
+HOLDING_STEP = '''"""A step that stays in its window until the test lets it go (files as the signal, not a clock)."""
+import pathlib
+import time
+
+HERE = pathlib.Path(__file__).parent
+
+
+def hold(rides):
+    (HERE / "started").touch()
+    deadline = time.monotonic() + 120  # a generous bound, turning a hang into a failure
+    while not (HERE / "go").exists() and time.monotonic() < deadline:
+        time.sleep(0.02)
+    return rides
+'''
+
+
+def test_why_of_a_window_being_run_says_running_instead_of_empty_row_counts(tmp_path):
+    """Hardening item 19: a running run has no row counts yet; `why` said `read -, dropped , rejected ,`."""
+    import time
+
+    from conftest_run import spawn
+    from helpers_plan import hourly_job, land_hour
+
+    job = hourly_job("2026-03-28T00:00", "2026-03-28T01:00").replace(
+        "steps:\n", "steps:\n  - python: holding_step:hold\n    name: held\n", 1).replace(
+        "FROM rides\n", "FROM held\n", 1)
+    root = write_jobs(tmp_path / "ws", {"rides_hourly": job}, {"holding_step.py": HOLDING_STEP})
+    land_hour(root, datetime(2026, 3, 28, tzinfo=UTC))
+    window = wid(datetime(2026, 3, 28, tzinfo=UTC))
+    proc = spawn(root, "run", "rides_hourly", "--window", window)
+    try:
+        deadline = time.monotonic() + 120  # a bound for the subprocess to reach its step
+        while not (root / "started").exists() and proc.poll() is None and time.monotonic() < deadline:
+            time.sleep(0.05)
+        assert (root / "started").exists(), proc.communicate(timeout=60)
+        result = cli(root, "why", "rides_hourly", window, "--at", AT)
+        assert result.exit_code == 0, result.stderr
+        last = next(line for line in result.stdout.splitlines() if line.startswith("last run"))
+        assert "running" in last and "started" in last
+        assert "dropped ," not in last and "rejected ," not in last and "written ;" not in last
+        assert cli_json(root, "why", "rides_hourly", window, "--at", AT)["last_run"]["status"] == "running"
+    finally:
+        (root / "go").touch()
+        out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 0, err
+    done = cli(root, "why", "rides_hourly", window, "--at", AT).stdout
+    # a finished run: figures as numbers (3 rides landed, 3 zone x fare rows written)
+    assert "read 3, dropped 0, rejected 0, written 3;" in done

@@ -405,6 +405,8 @@ def _wait_for(condition, seconds: float = 60.0) -> bool:
 
 def _done_count(root: Path) -> int:
     """Done runs in the ledger so far (sqlite3); 0 while the ledger is not created yet."""
+    if not ledger_file(root).exists():
+        return 0  # sqlite3 would create an empty file, which weir refuses as a damaged ledger
     try:
         return query(root, "SELECT COUNT(*) FROM weir_runs WHERE status='done'")[0][0]
     except sqlite3.OperationalError:

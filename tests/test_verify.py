@@ -141,3 +141,29 @@ def test_verify_without_a_ledger_reports_nothing_and_creates_none(tmp_path):
     assert cli_json(root, "verify") == []
     assert not (root / "state" / "ledger.sqlite").exists()
 
+
+
+def test_a_corrupted_output_database_is_reported_and_its_windows_marked_like_missing_ones(tmp_path):
+    """Hardening item 14: verify on a corrupted output SQLite file ended in `internal error: DatabaseError`."""
+    root = write_jobs(tmp_path / "ws", {"dock_days": DAYS_JOB})
+    assert cli_json(root, "tick", "--at", AT)["counts"] == {"done": 3}
+    days = [wid(datetime(2026, 3, d, tzinfo=LISBON)) for d in (24, 25, 26)]
+    db = root / "state" / "reports.sqlite"
+    for suffix in ("-wal", "-shm"):
+        Path(f"{db}{suffix}").unlink(missing_ok=True)
+    db.write_bytes(b"not the bytes of any database\n" * 300)
+    with pytest.raises(sqlite3.DatabaseError, match="not a database"):  # sqlite3 agrees it is unreadable
+        sqlite3.connect(db).execute("SELECT * FROM dock_days")
+    result = cli(root, "verify")
+    assert result.exit_code == 1, result.stderr
+    assert "internal error" not in result.stderr and "Traceback" not in result.stderr
+    assert "3 output problem(s)" in result.stdout
+    problems = cli_json(root, "verify", expect=1)
+    assert {(p["window"], p["problem"]) for p in problems} == {(d, "unreadable") for d in days}
+    assert all("not a database" in p["detail"] for p in problems)
+    # marked like missing ones: stale by output, and why says what verify found
+    stale = cli_json(root, "stale", "--at", AT)["windows"]
+    assert {(w["window"], tuple(w["reasons"])) for w in stale} == {(d, ("output",)) for d in days}
+    why = cli_json(root, "why", "dock_days", days[0], "--at", AT)
+    assert why["state"] == "stale" and "unreadable" in why["changes"]["output"]
+    assert query(root, "SELECT COUNT(*) FROM weir_windows WHERE output_state = 'unreadable'") == [(3,)]
