@@ -1,4 +1,4 @@
-"""Shared fixtures: temporary workspaces and a runner for the CLI."""
+"""Shared fixtures: temporary workspaces, a runner for the CLI, real servers (tests/servers.py)."""
 
 from __future__ import annotations
 
@@ -8,6 +8,14 @@ from pathlib import Path
 
 import pytest
 from click.testing import CliRunner
+from servers import (  # real servers on loopback: see tests/servers.py
+    _dask_session,
+    dask_cluster,
+    http_receiver,
+    make_pg_database,
+    pg_url,
+    postgres_server,
+)
 
 from runner.cli import cli
 
@@ -66,4 +74,12 @@ def pytest_runtest_makereport(item, call):
         report.longrepr = f"skipped under CI (WEIR_NO_SKIPS=1), which must run every test: {reason}"
 
 
-__all__ = ["cli"]
+__all__ = [
+    "_dask_session",
+    "cli",
+    "dask_cluster",
+    "http_receiver",
+    "make_pg_database",
+    "pg_url",
+    "postgres_server",
+]

@@ -1,4 +1,4 @@
-"""Alert delivery against real receivers: an HTTP server on 127.0.0.1 started here, and `sh -c` commands.
+"""Alert delivery against real receivers: an HTTP server on 127.0.0.1 (tests/servers.py), and `sh -c` commands.
 
 Backoff and retry times run on an injected clock that only moves when the
 injected sleep is called, so no test sleeps on the wall clock for a backoff.
@@ -16,14 +16,11 @@ import shlex
 import socket
 import threading
 import time
-from collections.abc import Iterator
-from contextlib import contextmanager
 from datetime import UTC, datetime, timedelta
-from email.message import Message
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 
 import pytest
+from servers import receiving
 
 from runner.engine.alerts import (
     Delivery,
@@ -71,66 +68,6 @@ class FakeTime:
 
 def real_clock() -> datetime:
     return datetime.now(UTC)
-
-
-class Receiver:
-    """What the test server received, and what it answers next ("hang": nothing; "trickle": never done)."""
-
-    def __init__(self, script: list[int | str]) -> None:
-        self.script = script
-        self.requests: list[tuple[str, str, Message, bytes]] = []
-        self.release = threading.Event()
-        self.url = ""
-
-    def posts(self) -> list[tuple[Message, bytes]]:
-        return [(headers, raw) for method, _, headers, raw in self.requests if method == "POST"]
-
-
-@contextmanager
-def receiving(*script: int | str) -> Iterator[Receiver]:
-    """A real HTTP server on 127.0.0.1 (standard library), answering POSTs by `script`, then 200."""
-    receiver = Receiver(list(script))
-
-    class Handler(BaseHTTPRequestHandler):
-        def do_POST(self) -> None:
-            raw = self.rfile.read(int(self.headers["Content-Length"]))
-            receiver.requests.append(("POST", self.path, self.headers, raw))
-            step = receiver.script.pop(0) if receiver.script else 200
-            if step == "hang":
-                receiver.release.wait(60)
-                return
-            if step == "trickle":  # an answer that does not end, a byte at a time (for 15 s at most)
-                self.wfile.write(b"HTTP/1.1 200 OK\r\nX-Slow: ")
-                until = time.monotonic() + 15
-                while not receiver.release.wait(0.2) and time.monotonic() < until:
-                    self.wfile.write(b"z")
-                return
-            self.send_response(int(step))
-            if 300 <= int(step) < 400:
-                self.send_header("Location", "/elsewhere")
-            self.send_header("Content-Length", "2")
-            self.end_headers()
-            self.wfile.write(b"ok")
-
-        def do_GET(self) -> None:
-            receiver.requests.append(("GET", self.path, self.headers, b""))
-            self.send_response(200)
-            self.send_header("Content-Length", "0")
-            self.end_headers()
-
-        def log_message(self, *args: object) -> None:
-            pass
-
-    server = ThreadingHTTPServer(("127.0.0.1", 0), Handler)
-    server.daemon_threads = True
-    threading.Thread(target=server.serve_forever, daemon=True).start()
-    receiver.url = f"http://127.0.0.1:{server.server_address[1]}/hooks/weir"
-    try:
-        yield receiver
-    finally:
-        receiver.release.set()
-        server.shutdown()
-        server.server_close()
 
 
 def closed_port() -> int:
