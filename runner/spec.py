@@ -333,9 +333,14 @@ class Output(_Model):
             raise ValueError("give exactly one of path: (a file) or table: (with database:)")
         if self.table is not None and self.database is None:
             raise ValueError("a table output needs database: (a SQLAlchemy URL)")
-        if self.path is not None:
-            check_template(self.path)
         return self
+
+    @field_validator("path")
+    @classmethod
+    def _template(cls, value: str | None) -> str | None:
+        if value is not None:
+            check_template(value)
+        return value
 
     @property
     def key(self) -> list[str] | None:
