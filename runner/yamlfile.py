@@ -31,7 +31,7 @@ Path = tuple[str | int, ...]
 
 MAX_DEPTH = 32
 """Most levels of nesting in a job file (a real one needs about 6)."""
-MAX_VALUES = 50_000
+MAX_VALUES = 20_000
 """Most values (scalars, lists, mappings) in a job file, aliases expanded."""
 MAX_ALIAS_VALUES = 10_000
 """Most values that aliases (`*name`) may copy in one job file."""
