@@ -82,6 +82,8 @@ class QueryShape:
 
     tables: frozenset[str]  # the tables it reads, lower case, CTE names left out
     star: bool  # it selects `*` or `t.*` somewhere (COUNT(*) does not count)
+    mentions: frozenset[str] = frozenset()  # every table name it uses, CTE names too (a CTE may
+    # shadow the input it reads: `WITH pay AS (SELECT * FROM pay WHERE ...)`)
 
 
 def query_shape(sql: str) -> QueryShape:
@@ -116,6 +118,7 @@ def _query_shape(sql: str) -> QueryShape:
     statement_classes, reader_classes = _classes()
     ctes = {cte.alias_or_name.lower() for cte in root.find_all(exp.CTE)}
     tables: set[str] = set()
+    mentions: set[str] = set()
     star = False
     for node in root.walk():
         if isinstance(node, statement_classes):
@@ -128,6 +131,7 @@ def _query_shape(sql: str) -> QueryShape:
                     f"table {node.sql(dialect=SQL_DIALECT)!r} names a schema or catalog; "
                     "a step reads its inputs, earlier named steps and bounds by their plain names")
             name = node.name.lower()
+            mentions.add(name)
             if name not in ctes:
                 tables.add(name)
         elif isinstance(node, exp.UDTF | exp.Unnest) and not isinstance(node, exp.Values):
@@ -136,7 +140,7 @@ def _query_shape(sql: str) -> QueryShape:
             raise SqlRefused(_reads_files_message(node))
         elif isinstance(node, exp.Star) and not isinstance(node.parent, exp.Func):
             star = True
-    return QueryShape(frozenset(tables), star)
+    return QueryShape(frozenset(tables), star, frozenset(mentions))
 
 
 @lru_cache(maxsize=1)
@@ -265,7 +269,7 @@ def _resolve_step(index: int, sql: str, known: dict[str, pl.Schema | None], by_l
             f"{', '.join(sorted(known) + ['bounds'])} (declare it under inputs:)")))
     if missing:
         return None
-    reads = {by_lower[t] for t in shape.tables if t != "bounds"}
+    reads = {by_lower[t] for t in shape.mentions if t in by_lower}
     unknown = any(known[n] is None for n in reads)
     frames = {}
     for name in reads:
@@ -273,7 +277,7 @@ def _resolve_step(index: int, sql: str, known: dict[str, pl.Schema | None], by_l
             schema = known[name]
             empty[name] = pl.LazyFrame(schema=schema) if schema is not None else pl.LazyFrame()
         frames[name] = empty[name]
-    if "bounds" in shape.tables:
+    if "bounds" in shape.mentions:
         frames["bounds"] = empty["bounds"]
     try:
         schema = pl.SQLContext(frames=frames, eager=False).execute(sql).collect_schema()

@@ -111,8 +111,8 @@ def build(spec: JobSpec, inputs: dict[str, pl.LazyFrame], window: Window, root: 
             except SqlRefused as exc:
                 raise StepError(f"{where}: {exc}") from None
             # Only the tables the step reads: registering every earlier step for each step is quadratic.
-            tables = {name: frame for name, frame in frames.items() if name.lower() in shape.tables}
-            if "bounds" in shape.tables:  # built only for steps that read it
+            tables = {name: frame for name, frame in frames.items() if name.lower() in shape.mentions}
+            if "bounds" in shape.mentions:  # built only for steps that read it
                 bounds = bounds if bounds is not None else bounds_frame(to_us(window.start), to_us(window.end))
                 tables["bounds"] = bounds
             ctx = pl.SQLContext(frames=tables, eager=False)

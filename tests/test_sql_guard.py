@@ -287,3 +287,25 @@ def test_the_demo_jobs_sql_passes_the_guard():
     assert steps
     for sql in steps:
         assert not refused(textwrap.dedent(sql)), sql
+
+
+def test_a_cte_named_like_the_input_it_reads_still_gets_that_input(tmp_path):
+    """Hardening item 10 (the guard's table list): `WITH pay AS (SELECT * FROM pay ...)` reads the input pay.
+
+    Steps are given only the tables they name; a CTE that shadows an input
+    still names it, so the input is given too (the first cut left it out).
+    """
+    from runner.spec import JobSpec
+    from runner.steps import build
+    from runner.windows import Cadence
+
+    sql = "WITH pay AS (SELECT * FROM pay WHERE amount > 0) SELECT COUNT(*) AS n FROM pay"
+    spec = JobSpec.model_validate({
+        "window": {"every": "1h", "start": "2026-01-01T00:00"},
+        "inputs": {"pay": {"files": "landing/{start:%Y%m%d%H}.csv", "schema": {"amount": "int"}}},
+        "steps": [{"sql": sql}],
+        "output": {"path": "state/out/{start:%Y%m%d%H}.parquet"},
+    })
+    pay = pl.LazyFrame({"amount": [5, -1, 7]})
+    out = build(spec, {"pay": pay}, Cadence.of(spec.window).first(), tmp_path).collect()
+    assert out["n"].to_list() == [2]  # counted by hand: 5 and 7
