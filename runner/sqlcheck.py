@@ -57,6 +57,7 @@ STAMP_COLUMNS = ("window_start", "window_end", "run_id", "code_version")
 class StepFinding:
     step: int
     message: str
+    path: tuple[str | int, ...] | None = None  # where in the job file; None: steps.STEP.sql
 
 
 @dataclass
@@ -141,6 +142,34 @@ def _query_shape(sql: str) -> QueryShape:
         elif isinstance(node, exp.Star) and not isinstance(node.parent, exp.Func):
             star = True
     return QueryShape(frozenset(tables), star, frozenset(mentions))
+
+
+def check_rule(rule: str) -> None:
+    """Raise SqlRefused unless an output check's `rule:` is a plain expression over the output's columns.
+
+    polars evaluates a rule with `sql_expr`, which would open a file named in
+    a subquery (`a IN (SELECT x FROM read_csv('...'))`) before failing.
+    """
+    _check_rule(rule)
+
+
+@lru_cache(maxsize=256)
+def _check_rule(rule: str) -> None:
+    import sqlglot
+    from sqlglot import exp
+
+    try:
+        tree = sqlglot.parse_one(rule, read=SQL_DIALECT)
+    except (sqlglot.errors.SqlglotError, RecursionError) as exc:
+        raise SqlRefused(f"cannot parse this rule to check what it reads: {_parse_message(exc)}") from None
+    statement_classes, reader_classes = _classes()
+    refused = (exp.Query, exp.Table, exp.UDTF, *statement_classes)
+    for node in tree.walk():
+        if isinstance(node, refused):
+            raise SqlRefused("a rule is an expression over the output's columns; it reads no table "
+                             "and runs no query")
+        if isinstance(node, exp.Func) and _reads_files(node, reader_classes):
+            raise SqlRefused(_reads_files_message(node))
 
 
 @lru_cache(maxsize=1)
@@ -240,6 +269,12 @@ def resolve_job(job: Job, producer_schemas: dict[str, pl.Schema | None]) -> Reso
         if step.name:
             known[step.name] = last
             by_lower[step.name.lower()] = step.name
+    for index, check in enumerate(job.spec.output.checks):
+        if check.rule is not None:
+            try:
+                check_rule(check.rule)
+            except SqlRefused as exc:
+                result.findings.append(StepFinding(index, str(exc), ("output", "checks", index, "rule")))
     if last is not None and job.spec.output.stamp:
         last = pl.Schema({
             **dict(last),

@@ -82,8 +82,7 @@ def test_check_refuses_sql_that_reads_a_file_in_any_spelling(weir, make_workspac
     result = weir(root, "check", "--at", "2026-01-05T00:00Z")
     assert result.exit_code == 2, result.output
     (line,) = result.output.strip().splitlines()[:-1]
-    assert line.startswith("jobs/pay_daily.yaml:5:11: steps.0.sql: SQL reads files itself with read_csv()") \
-        or "steps.0.sql: SQL reads files itself with read_csv()" in line, line
+    assert "jobs/pay_daily.yaml:5:10: steps.0.sql: SQL reads files itself with read_csv()" in line, line
 
 
 @pytest.mark.parametrize(("sql", "words"), [
@@ -309,3 +308,37 @@ def test_a_cte_named_like_the_input_it_reads_still_gets_that_input(tmp_path):
     pay = pl.LazyFrame({"amount": [5, -1, 7]})
     out = build(spec, {"pay": pay}, Cadence.of(spec.window).first(), tmp_path).collect()
     assert out["n"].to_list() == [2]  # counted by hand: 5 and 7
+
+
+# ---------------------------------------------------------------- output check rules are expressions only
+
+
+def test_a_rule_with_a_subquery_is_refused_at_check_where_it_is_written(weir, make_workspace):
+    """Hardening item 10: polars' sql_expr opens a file named in a rule's subquery."""
+    text = PAY.replace('output: {path: "state/out/{start:%Y-%m-%d}.csv"}',
+                       'output:\n  path: "state/out/{start:%Y-%m-%d}.csv"\n  checks:\n'
+                       "    - rule: n >= 0\n"
+                       "    - rule: \"n IN (SELECT x FROM read_csv('/nonexistent/secret.csv'))\"")
+    root = make_workspace({"pay_daily": text.replace("SQL", json.dumps("SELECT COUNT(*) AS n FROM pay"))})
+    result = weir(root, "check", "--at", "2026-01-05T00:00Z")
+    assert result.exit_code == 2, result.output
+    (line,) = result.output.strip().splitlines()[:-1]
+    assert "jobs/pay_daily.yaml:10:13: output.checks.1.rule: a rule is an expression" in line, line
+
+
+def test_a_rule_changed_after_check_to_read_a_file_fails_the_window_without_opening_it(tmp_path):
+    """Hardening item 10: at run time the rule is refused before polars looks for the file."""
+    root = tmp_path / "ws"
+    (root / "jobs").mkdir(parents=True)
+    (root / "landing" / "pay").mkdir(parents=True)
+    (root / "landing" / "pay" / "2026-01-01.csv").write_text("merchant,amount\nm1,5\n")
+    job = root / "jobs" / "pay_daily.yaml"
+    rule = "n IN (SELECT x FROM read_csv('/nonexistent/secret.csv'))"
+    job.write_text(PAY.replace("SQL", json.dumps("SELECT COUNT(*) AS n FROM pay")).replace(
+        'output: {path: "state/out/{start:%Y-%m-%d}.csv"}',
+        f'output:\n  path: "state/out/{{start:%Y-%m-%d}}.csv"\n  checks: [{{rule: {json.dumps(rule)}}}]'))
+    result = cli(root, "run", "pay_daily", "--window", "2026-01-01")
+    text = result.output + result.stderr
+    assert result.exit_code != 0
+    assert "a rule is an expression over the output's columns" in text, text
+    assert "No such file" not in text  # polars never went looking for it
