@@ -447,6 +447,12 @@ def check_output(frame: pl.LazyFrame, checks: list[OutputCheck], previous: pl.La
                     raise failed(f"{what} rose {change:.1%}, from {before:g} in the previous window to "
                                  f"{now:g}; at most {spec.max_rise:.0%} allowed")
         elif check.rule is not None:
+            from runner.sqlcheck import SqlRefused, check_rule
+
+            try:  # before polars reads it: a subquery in a rule would open files
+                check_rule(check.rule)
+            except SqlRefused as exc:
+                raise CheckFailed(name, f"{where}check {name}: {exc}") from None
             try:
                 expr = pl.sql_expr(check.rule)
                 bad = numbered.filter(~expr.fill_null(False))

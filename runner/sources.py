@@ -20,7 +20,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from runner.errors import WeirError
-from runner.spec import Column, DatabaseInput, FileInput
+from runner.spec import Column, DatabaseInput, FileInput, format_from_name
 
 if TYPE_CHECKING:
     import polars as pl
@@ -86,13 +86,9 @@ def file_sha256(path: str | Path) -> str:
 
 
 def file_format(path: str, declared: str | None) -> str:
-    if declared:
-        return declared
-    lower = path.lower()
-    for suffix, fmt in ((".parquet", "parquet"), (".pq", "parquet"), (".ndjson", "ndjson"),
-                        (".jsonl", "ndjson"), (".json", "ndjson"), (".csv", "csv"), (".csv.gz", "csv")):
-        if lower.endswith(suffix):
-            return fmt
+    fmt = declared or format_from_name(path)
+    if fmt:
+        return fmt
     raise InputError(f"cannot tell the format of {path}; add format: csv, parquet or ndjson to the input")
 
 

@@ -32,7 +32,7 @@ from pydantic import (
 
 from runner.errors import Problem, SpecProblems
 from runner.timeutil import BadValue, parse_duration, parse_instant, zone
-from runner.yamlfile import Marked, load_marked, source_text
+from runner.yamlfile import Marked, YamlLimit, load_marked, source_text
 
 
 def _text(value: Any) -> Any:
@@ -166,6 +166,15 @@ class FileInput(_Model):
     def _template(cls, value: str) -> str:
         check_template(value)
         return value
+
+    @model_validator(mode="after")
+    def _format_known(self) -> FileInput:
+        if self.format is None:
+            last = self.files.format(start=_SAMPLE_TIME, end=_SAMPLE_TIME).rsplit("/", 1)[-1]
+            if format_from_name(last) is None and not any(c in last for c in "*?["):
+                raise ValueError(f"cannot tell the format of {_short(self.files)!r} from its name; add "
+                                 "format: csv, parquet or ndjson")
+        return self
 
 
 class JobInput(_Model):
@@ -324,9 +333,14 @@ class Output(_Model):
             raise ValueError("give exactly one of path: (a file) or table: (with database:)")
         if self.table is not None and self.database is None:
             raise ValueError("a table output needs database: (a SQLAlchemy URL)")
-        if self.path is not None:
-            check_template(self.path)
         return self
+
+    @field_validator("path")
+    @classmethod
+    def _template(cls, value: str | None) -> str | None:
+        if value is not None:
+            check_template(value)
+        return value
 
     @property
     def key(self) -> list[str] | None:
@@ -433,43 +447,79 @@ class JobSpec(_Model):
     @field_validator("inputs")
     @classmethod
     def _names(cls, value: dict[str, Any]) -> dict[str, Any]:
+        seen: set[str] = set()
         for name in value:
             if name.lower() in _RESERVED_NAMES:
                 raise ValueError(f"input name {name!r} is reserved (the table of window bounds)")
+            if name.lower() in seen:  # SQL finds tables without regard to case
+                raise ValueError(f"input names {name!r} and another differ only in case; SQL cannot tell "
+                                 "them apart")
+            seen.add(name.lower())
         return value
 
     @model_validator(mode="after")
     def _step_names(self) -> JobSpec:
-        seen = set(self.inputs)
+        seen = {name.lower() for name in self.inputs}  # SQL finds tables without regard to case
         for step in self.steps:
             if step.name is not None:
-                if step.name in seen or step.name.lower() in _RESERVED_NAMES:
+                if step.name.lower() in seen or step.name.lower() in _RESERVED_NAMES:
                     raise ValueError(f"step name {step.name!r} is already an input, step or reserved name")
-                seen.add(step.name)
+                seen.add(step.name.lower())
         return self
 
 
 _TEMPLATE_FIELDS = {"start", "end"}
+NAME_MAX = 255
+"""Longest file or folder name in bytes (POSIX NAME_MAX on Linux and common file systems)."""
+PATH_MAX = 4096
+"""Longest path in bytes that Linux opens (PATH_MAX)."""
+_SAMPLE_TIME = datetime(2026, 12, 31, 23, 59, 59)  # a sample instant: two-digit fields at their widest
 
 
 def check_template(template: str) -> None:
-    """Raise ValueError unless `template` only uses {start:...} and {end:...}."""
+    """Raise ValueError unless `template` only uses {start:...} and {end:...} and can name a file."""
     import string
 
     try:
         parsed = list(string.Formatter().parse(template))
     except ValueError as exc:
-        raise ValueError(f"bad path template {template!r}: {exc}") from None
-    for _, field_name, spec, _ in parsed:
+        raise ValueError(f"bad path template {_short(template)!r}: {exc}") from None
+    for _, field_name, spec, conversion in parsed:
         if field_name is None:
             continue
-        base = field_name.split(".")[0].split("[")[0]
-        if base not in _TEMPLATE_FIELDS:
+        if field_name not in _TEMPLATE_FIELDS:
             raise ValueError(
-                f"unknown placeholder {{{field_name}}} in {template!r}: use {{start:%Y-%m-%d}} or {{end:...}}"
+                f"unknown placeholder {{{_short(field_name)}}} in {_short(template)!r}: "
+                "use {start:%Y-%m-%d} or {end:...}"
             )
-        if spec and "%" not in spec:
-            raise ValueError(f"placeholder {{{field_name}:{spec}}} needs a strftime format like %Y-%m-%d")
+        if conversion or (spec and "%" not in spec):
+            raise ValueError(f"placeholder {{{field_name}:{_short(spec or '')}}} needs a strftime format "
+                             "like %Y-%m-%d")
+    sample = template.format(start=_SAMPLE_TIME, end=_SAMPLE_TIME)
+    for name in sample.split("/"):
+        if len(name.encode("utf-8", "surrogatepass")) > NAME_MAX:
+            raise ValueError(f"a file or folder name of {len(name.encode('utf-8', 'surrogatepass')):,} bytes "
+                             f"({_short(name)!r}) cannot exist: names are at most {NAME_MAX} bytes")
+    if len(sample.encode("utf-8", "surrogatepass")) > PATH_MAX:
+        raise ValueError(f"a path of {len(sample.encode('utf-8', 'surrogatepass')):,} bytes cannot be opened: "
+                         f"paths are at most {PATH_MAX} bytes")
+
+
+FORMAT_SUFFIXES = ((".parquet", "parquet"), (".pq", "parquet"), (".ndjson", "ndjson"), (".jsonl", "ndjson"),
+                   (".json", "ndjson"), (".csv", "csv"), (".csv.gz", "csv"))
+
+
+def format_from_name(path: str) -> str | None:
+    """The input format a file name implies (csv, parquet, ndjson), or None."""
+    lower = path.lower()
+    for suffix, fmt in FORMAT_SUFFIXES:
+        if lower.endswith(suffix):
+            return fmt
+    return None
+
+
+def _short(text: str, limit: int = 60) -> str:
+    return text if len(text) <= limit else f"{text[:limit]}..."
 
 
 # ---------------------------------------------------------------- loading
@@ -495,6 +545,15 @@ class Job:
 
 _JOB_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 
+MAX_FILE_BYTES = 256 * 1024
+"""The longest job file weir reads (a real one is a few KiB); see yamlfile for the other limits."""
+
+
+def _position(raw: bytes, offset: int) -> tuple[int, int]:
+    """1-based line and column (in characters) of byte `offset` of UTF-8 `raw`."""
+    start = raw.rfind(b"\n", 0, offset) + 1
+    return raw.count(b"\n", 0, offset) + 1, len(raw[start:offset].decode("utf-8", errors="replace")) + 1
+
 
 def dotted(path: tuple[str | int, ...]) -> str:
     return ".".join(str(p) for p in path)
@@ -504,11 +563,25 @@ def load_job(file: Path, display: str | None = None) -> Job:
     """Load and validate one job file; raise SpecProblems with every problem found."""
     shown = display or str(file)
     try:
-        text = file.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
+        with open(file, "rb") as handle:
+            raw = handle.read(MAX_FILE_BYTES + 1)
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line, col = _position(raw, exc.start)
+        raise SpecProblems([Problem(shown, line, col, "", f"cannot read job file: not UTF-8 text ({exc.reason})")]) from None
+    except OSError as exc:
         raise SpecProblems([Problem(shown, 1, 1, "", f"cannot read job file: {exc}")]) from None
+    if len(raw) > MAX_FILE_BYTES:
+        line, col = _position(raw, MAX_FILE_BYTES)
+        raise SpecProblems([Problem(shown, line, col, "", (
+            f"job file longer than {MAX_FILE_BYTES // 1024} KiB, a limit of weir job files; "
+            "split the job or move long SQL into a python step"))])
     try:
         marked = load_marked(text)
+    except YamlLimit as exc:
+        mark = exc.problem_mark
+        line, col = (mark.line + 1, mark.column + 1) if mark else (1, 1)
+        raise SpecProblems([Problem(shown, line, col, "", f"{exc.problem}, a limit of weir job files")]) from None
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         line, col = (mark.line + 1, mark.column + 1) if mark else (1, 1)

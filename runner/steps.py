@@ -19,7 +19,7 @@ from typing import TYPE_CHECKING, Any
 
 from runner.errors import WeirError
 from runner.spec import JobSpec, PythonStep, SqlStep
-from runner.sqlcheck import bounds_frame, file_functions
+from runner.sqlcheck import SqlRefused, bounds_frame, query_shape
 from runner.timeutil import to_us
 
 if TYPE_CHECKING:
@@ -106,11 +106,13 @@ def build(spec: JobSpec, inputs: dict[str, pl.LazyFrame], window: Window, root: 
     for i, step in enumerate(spec.steps):
         where = f"step {i + 1}" + (f" ({step.name})" if step.name else "")
         if isinstance(step, SqlStep):
-            used = file_functions(step.sql)
-            if used:
-                raise StepError(f"{where}: SQL may not read files itself ({', '.join(used)}); declare inputs")
-            tables = dict(frames)
-            if "bounds" in step.sql.lower():  # built only for steps that may read it
+            try:  # the guard again: the job file may have changed since `weir check`
+                shape = query_shape(step.sql)
+            except SqlRefused as exc:
+                raise StepError(f"{where}: {exc}") from None
+            # Only the tables the step reads: registering every earlier step for each step is quadratic.
+            tables = {name: frame for name, frame in frames.items() if name.lower() in shape.mentions}
+            if "bounds" in shape.mentions:  # built only for steps that read it
                 bounds = bounds if bounds is not None else bounds_frame(to_us(window.start), to_us(window.end))
                 tables["bounds"] = bounds
             ctx = pl.SQLContext(frames=tables, eager=False)

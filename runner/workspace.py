@@ -181,5 +181,5 @@ def _sql_problems(jobs: dict[str, Job], schemas: dict) -> list[Problem]:
         resolution = resolve_job(job, schemas)
         schemas[name] = resolution.output
         for finding in resolution.findings:
-            problems.append(job.problem(("steps", finding.step, "sql"), finding.message))
+            problems.append(job.problem(finding.path or ("steps", finding.step, "sql"), finding.message))
     return problems

@@ -9,6 +9,13 @@ what was typed (`01` stays `01`).
 
 `load_marked` returns the data and a map from key path to (line, column) of
 the value and of the key, 1-based, for error messages.
+
+A job file is read on every tick of `weir serve`, so what one file can cost
+is bounded before it gets expensive: nesting deeper than `MAX_DEPTH` stops
+the scanner, and aliases (`*name`) may copy at most `MAX_ALIAS_VALUES` values
+(a file at most `MAX_VALUES` once every alias is expanded), so an alias bomb
+is refused after a few thousand steps instead of filling memory. Each limit
+raises `YamlLimit`, a marked error pointing at the place it was passed.
 """
 
 from __future__ import annotations
@@ -18,8 +25,22 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import yaml
+from yaml.events import AliasEvent, CollectionStartEvent
 
 Path = tuple[str | int, ...]
+
+MAX_DEPTH = 32
+"""Most levels of nesting in a job file (a real one needs about 6)."""
+MAX_VALUES = 20_000
+"""Most values (scalars, lists, mappings) in a job file, aliases expanded."""
+MAX_ALIAS_VALUES = 10_000
+"""Most values that aliases (`*name`) may copy in one job file."""
+
+_SURROGATE = re.compile("[\ud800-\udfff]")
+
+
+class YamlLimit(yaml.MarkedYAMLError):
+    """A job file passed one of the limits above (marked where it did)."""
 
 
 class YamlInt(int):
@@ -35,10 +56,69 @@ class YamlFloat(float):
 
 
 class _CoreLoader(yaml.SafeLoader):
-    """SafeLoader with YAML 1.2 core-schema implicit resolvers."""
+    """SafeLoader with YAML 1.2 core-schema implicit resolvers and bounded cost."""
+
+    def __init__(self, stream: str) -> None:
+        super().__init__(stream)
+        self._depth = 0
+        self._sizes: dict[int, int] = {}  # id(node) -> values it stands for, aliases expanded
+        self._total = 0
+        self._copied = 0
+
+    def _limit(self, message: str, mark: yaml.Mark) -> YamlLimit:
+        return YamlLimit(None, None, message, mark)
+
+    # The scanner keeps one entry per open flow level and rescans them all at
+    # every token: cap the levels before that turns quadratic.
+    def fetch_flow_collection_start(self, TokenClass: Any) -> None:
+        if self.flow_level >= MAX_DEPTH:
+            raise self._limit(f"nested deeper than {MAX_DEPTH} levels", self.get_mark())
+        super().fetch_flow_collection_start(TokenClass)
+
+    def add_indent(self, column: int) -> bool:
+        if len(self.indents) > MAX_DEPTH and self.indent < column:  # indents[0] is the root's
+            raise self._limit(f"nested deeper than {MAX_DEPTH} levels", self.get_mark())
+        return super().add_indent(column)
+
+    def compose_node(self, parent: Any, index: Any) -> Any:
+        if self.check_event(AliasEvent):
+            mark = self.peek_event().start_mark
+            node = super().compose_node(parent, index)
+            size = self._sizes.get(id(node))
+            if size is None:
+                raise self._limit("an alias inside the value it names (a structure without end)", mark)
+            self._copied += size
+            self._total += size
+            if self._copied > MAX_ALIAS_VALUES:
+                raise self._limit(
+                    f"aliases copy more than {MAX_ALIAS_VALUES:,} values in this file", mark)
+            if self._total > MAX_VALUES:
+                raise self._limit(f"more than {MAX_VALUES:,} values once aliases are expanded", mark)
+            return node
+        nests = self.check_event(CollectionStartEvent)
+        self._depth += nests
+        if self._depth > MAX_DEPTH:
+            raise self._limit(f"nested deeper than {MAX_DEPTH} levels", self.peek_event().start_mark)
+        try:
+            node = super().compose_node(parent, index)
+        finally:
+            self._depth -= nests
+        self._total += 1
+        if self._total > MAX_VALUES:
+            raise self._limit(f"more than {MAX_VALUES:,} values", node.start_mark)
+        if isinstance(node, yaml.SequenceNode):
+            size = 1 + sum(self._sizes[id(item)] for item in node.value)
+        elif isinstance(node, yaml.MappingNode):
+            size = 1 + sum(self._sizes[id(k)] + self._sizes[id(v)] for k, v in node.value)
+        else:
+            size = 1
+        self._sizes[id(node)] = size
+        return node
 
 
 _CoreLoader.yaml_implicit_resolvers = {}
+# `<<: *defaults` merges a mapping (a YAML 1.1 type kept by common practice; the core schema lacks it)
+_CoreLoader.add_implicit_resolver("tag:yaml.org,2002:merge", re.compile(r"^<<$"), ["<"])
 _CoreLoader.add_implicit_resolver(
     "tag:yaml.org,2002:null", re.compile(r"^(?:~|null|Null|NULL|)$"), ["~", "n", "N", ""]
 )
@@ -89,6 +169,11 @@ def _pos(node: yaml.Node) -> tuple[int, int]:
 def _scalar(node: yaml.ScalarNode) -> Any:
     tag = node.tag
     text = node.value
+    bad = _SURROGATE.search(text)
+    if bad:
+        raise yaml.constructor.ConstructorError(None, None, (
+            f"\\u{ord(bad.group()):04X} is half of a UTF-16 surrogate pair, not a character "
+            "(UTF-8 cannot store it); write the character itself"), node.start_mark)
     if tag == "tag:yaml.org,2002:null":
         return None
     if tag == "tag:yaml.org,2002:bool":
@@ -137,11 +222,11 @@ def _build(node: yaml.Node, path: Path, out: Marked) -> Any:
                         for k, v in item.items():
                             result.setdefault(k, v)
                 continue
-            key = _build(key_node, path + ("<key>",), out)
-            if isinstance(key, list | dict):  # `? [a, b]`: legal YAML, unusable as a key
+            if not isinstance(key_node, yaml.ScalarNode):  # `? [a, b]`: legal YAML, unusable as a key
                 raise yaml.constructor.ConstructorError(
                     None, None, "a key must be a plain value, not a list or mapping", key_node.start_mark
                 )
+            key = _build(key_node, path + ("<key>",), out)
             key = key.yaml_text if isinstance(key, YamlInt | YamlFloat) else key
             key = str(key).lower() if isinstance(key, bool) else key
             key = "null" if key is None else key

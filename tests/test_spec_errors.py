@@ -452,3 +452,53 @@ def test_window_start_accepts_a_date_or_a_local_timestamp(weir, make_workspace, 
     # zoneinfo: Lisbon is UTC+00:00 in January
     assert summary["first_window"] == "2026-01-01T00:00+00:00"
     assert summary["windows_due"] == 2  # 1 and 2 January have ended by the 3rd, 00:00 UTC
+
+
+# ---------------------------------------------------------------- paths that cannot name a file (issue 9)
+
+
+@pytest.mark.parametrize(("template", "words"), [
+    ("state/out/{start.year}.parquet", "unknown placeholder {start.year}"),
+    ("state/out/{start.__class__}.parquet", "unknown placeholder {start.__class__}"),
+    ("state/out/{start!r}.parquet", "needs a strftime format"),
+    ("state/out/" + "n" * 256 + "/{start:%Y-%m-%dT%H%z}.parquet", "a file or folder name of 256 bytes"),
+    ("state/" + "d/" * 2100 + "{start:%Y-%m-%dT%H%z}.parquet", "a path of 4,"),
+])
+def test_an_output_template_that_cannot_name_a_file_is_refused(weir, make_workspace, template, words):
+    """Hardening item 8 (case2_236): only {start:FMT}/{end:FMT}; names <= 255 bytes, paths <= 4,096 (Linux limits)."""
+    found = one_problem(weir, make_workspace, "rides_hourly", job(f'output: {{path: "{template}"}}'))
+    assert found["rest"].startswith("output.path: ") and words in found["rest"], found["rest"]
+
+
+@pytest.mark.parametrize(("files", "refused"), [
+    ("/etc/passwd", True),
+    ("state/landing/rides/{start:%Y-%m-%d}", True),
+    ("state/landing/rides/{start:%Y-%m-%d}/*", False),  # a glob: each file's own name decides
+    ("state/landing/rides/{start:%Y-%m-%d}.csv.gz", False),
+])
+def test_a_file_input_whose_name_says_no_format_needs_format(weir, make_workspace, files, refused):
+    """Hardening item 8 (case3_21): passed check, then failed every window with 'cannot tell the format'."""
+    text = job(f'inputs:\n  rides: {{files: "{files}"}}\nsteps: [{{sql: SELECT 1 AS n FROM rides}}]\n')
+    root = make_workspace({"rides_hourly": text})
+    result = weir(root, "check", "--at", "2026-02-01T00:00Z")
+    if refused:
+        assert result.exit_code == 2 and "inputs.rides: cannot tell the format of" in result.output, result.output
+    else:
+        assert result.exit_code == 0, result.output
+
+
+@pytest.mark.parametrize("inputs", [
+    '  rides: {files: "a/{start:%Y}/*.csv"}\n  Rides: {files: "b/{start:%Y}/*.csv"}\n',
+])
+def test_names_that_differ_only_in_case_are_refused(weir, make_workspace, inputs):
+    """Found with hardening item 9: polars finds tables without regard to case (FROM RIDES reads rides)."""
+    found = one_problem(weir, make_workspace, "rides_hourly", job(f"inputs:\n{inputs}"))
+    assert "differ only in case" in found["rest"]
+
+
+def test_a_step_named_like_an_input_in_another_case_is_refused(weir, make_workspace):
+    """Found with hardening item 9: a step `RIDES` would shadow the input `rides` in polars' SQL."""
+    found = one_problem(weir, make_workspace, "rides_hourly", job(
+        'inputs:\n  rides: {files: "a/{start:%Y}/*.csv"}\n'
+        "steps: [{sql: SELECT 1 AS n FROM rides, name: RIDES}]\n"))
+    assert "step name 'RIDES' is already an input, step or reserved name" in found["rest"]

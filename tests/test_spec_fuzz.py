@@ -82,7 +82,8 @@ VALUES = st.recursive(
 KEYS = st.one_of(st.sampled_from(["windw", "evry", "timezone", "schema", "columns", "job", "files", "sql",
                                   "checks", "lag", "lookback", "stamp", "name", "end", "1", "true", "null"]),
                  st.text(min_size=1, max_size=8))
-NOISE = st.text(alphabet=st.one_of(st.sampled_from(list(":{}[]&*!|>'\"%@`#-,?\t\n ")), st.characters()),
+NOISE = st.text(alphabet=st.one_of(st.sampled_from(list(":{}[]&*!|>'\"%@`#-,?\t\n ")),
+                                  st.characters(codec="utf-8")),  # a file holds UTF-8: no lone surrogates
                 min_size=1, max_size=6)
 
 
