@@ -218,3 +218,39 @@ class Browser:
                 except subprocess.TimeoutExpired:
                     os.killpg(self.proc.pid, signal.SIGKILL)
                     self.proc.wait(timeout=10)
+
+
+def clipped_labels(browser: Browser) -> list[str]:
+    """Texts the open page cuts, measured by Chromium with every <details> open: SVG text outside its
+    drawing, axis labels outside their row, elements that hide overflowing text, and a page wider than
+    the window. An empty list when nothing is cut."""
+    return browser.evaluate("""(function(){
+      document.querySelectorAll('details').forEach(function(d){ d.open = true; });
+      window.dispatchEvent(new Event('resize'));
+      var bad = [];
+      document.querySelectorAll('svg text').forEach(function(t){
+        var s = t.ownerSVGElement.getBoundingClientRect(), r = t.getBoundingClientRect();
+        if (r.width === 0) { return; }
+        if (r.left < s.left - 0.5 || r.right > s.right + 0.5 || r.top < s.top - 0.5 || r.bottom > s.bottom + 0.5) {
+          bad.push('svg text ' + t.textContent);
+        }
+      });
+      document.querySelectorAll('.axis-labels .al').forEach(function(l){
+        if (l.classList.contains('hidden')) { return; }
+        var c = l.parentElement.getBoundingClientRect(), r = l.getBoundingClientRect();
+        if (r.left < c.left - 0.5 || r.right > c.right + 0.5) { bad.push('axis label ' + l.textContent); }
+      });
+      document.querySelectorAll('body *').forEach(function(e){
+        var cs = getComputedStyle(e);
+        if ((cs.overflowX === 'hidden' || cs.textOverflow === 'ellipsis') && e.scrollWidth > e.clientWidth + 1) {
+          bad.push('cut ' + e.tagName + ' ' + e.textContent.slice(0, 40));
+        }
+      });
+      document.querySelectorAll('main section, li.problem, table.overview').forEach(function(e){
+        if (e.scrollWidth > e.clientWidth + 1) { bad.push('wider than its box: ' + e.tagName + '#' + e.id); }
+      });
+      if (document.documentElement.scrollWidth > window.innerWidth) {
+        bad.push('page wider than the window: ' + document.documentElement.scrollWidth);
+      }
+      return bad;
+    })()""")

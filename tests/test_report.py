@@ -31,7 +31,7 @@ from zoneinfo import ZoneInfo
 
 import pytest
 from conftest_run import cli, ledger_rows
-from helpers_browser import Browser
+from helpers_browser import Browser, clipped_labels
 from helpers_data import TZ, ride_rows, write_rides, write_workspace
 
 AT = "2026-03-26T03:00:00Z"
@@ -459,33 +459,7 @@ def test_every_command_shown_parses_as_a_weir_command(arranged: dict[str, Any], 
 
 def test_browser_clips_no_label_and_the_page_fits_its_width(arranged: dict[str, Any], browser: Browser):
     browser.open(arranged["path"])
-    clipped = browser.evaluate("""(function(){
-      document.querySelectorAll('details').forEach(function(d){ d.open = true; });
-      window.dispatchEvent(new Event('resize'));
-      var bad = [];
-      document.querySelectorAll('svg text').forEach(function(t){
-        var s = t.ownerSVGElement.getBoundingClientRect(), r = t.getBoundingClientRect();
-        if (r.width === 0) { return; }
-        if (r.left < s.left - 0.5 || r.right > s.right + 0.5 || r.top < s.top - 0.5 || r.bottom > s.bottom + 0.5) {
-          bad.push('svg text ' + t.textContent);
-        }
-      });
-      document.querySelectorAll('.axis-labels .al').forEach(function(l){
-        if (l.classList.contains('hidden')) { return; }
-        var c = l.parentElement.getBoundingClientRect(), r = l.getBoundingClientRect();
-        if (r.left < c.left - 0.5 || r.right > c.right + 0.5) { bad.push('axis label ' + l.textContent); }
-      });
-      document.querySelectorAll('body *').forEach(function(e){
-        var cs = getComputedStyle(e);
-        if ((cs.overflowX === 'hidden' || cs.textOverflow === 'ellipsis') && e.scrollWidth > e.clientWidth + 1) {
-          bad.push('cut ' + e.tagName + ' ' + e.textContent.slice(0, 40));
-        }
-      });
-      if (document.documentElement.scrollWidth > window.innerWidth) {
-        bad.push('page wider than the window: ' + document.documentElement.scrollWidth);
-      }
-      return bad;
-    })()""")
+    clipped = clipped_labels(browser)
     assert clipped == []
     # the axis under the bars shows its labels (some may be left out, none is cut)
     assert browser.evaluate("document.querySelectorAll('.axis-labels .al:not(.hidden)').length") >= 2

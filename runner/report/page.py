@@ -152,6 +152,14 @@ def _legend() -> str:
     return f'<ul class="legend" aria-label="what the glyphs and patterns mean">{"".join(items)}</ul>'
 
 
+def _command(line: str) -> str:
+    """A command to paste: it may wrap between its words, never inside one (a window id has hyphens)."""
+    import shlex
+
+    words_ = " ".join(f"<span>{esc(shlex.quote(w))}</span>" for w in shlex.split(line))
+    return f'<code class="command">{words_}</code>'
+
+
 def _problem(p: Problem, v: JobView, at_us: int) -> str:
     since = timedelta(microseconds=max(at_us - p.first_end_us, 0))
     span = p.first if p.count == 1 else f"{p.first} .. {p.last_end}"
@@ -162,11 +170,9 @@ def _problem(p: Problem, v: JobView, at_us: int) -> str:
         spans = f'<div class="sub">in {_n(p.ranges)} ranges: {esc(shown)}{esc(more)}</div>'
     overdue = (f' <span class="st s-overdue">{GLYPH["overdue"]} {_n(p.overdue)} overdue</span>' if p.overdue else "")
     example = f'<div class="why">{esc(p.example)}</div>' if p.example and p.state in ("failed", "waiting") else ""
-    cmd = (f'<div class="cmd"><span class="lbl">run</span><code class="command">{esc(p.command)}</code></div>'
-           if p.command else "")
+    cmd = (f'<div class="cmd"><span class="lbl">run</span>{_command(p.command)}</div>' if p.command else "")
     note = f'<div class="pnote">{esc(p.note)}</div>' if p.note else ""
-    explain = (f'<div class="cmd"><span class="lbl">see why</span><code class="command">{esc(p.explain)}</code>'
-               '</div>' if p.explain else "")
+    explain = (f'<div class="cmd"><span class="lbl">see why</span>{_command(p.explain)}</div>' if p.explain else "")
     return (f'<li class="problem p-{p.state}" data-job="{esc(p.job)}" data-state="{p.state}" '
             f'data-kind="{esc(p.kind)}" data-count="{p.count}" data-first="{esc(p.first)}" '
             f'data-last-end="{esc(p.last_end)}" data-ranges="{p.ranges}">'

@@ -77,7 +77,7 @@ def write_jobs(root: Path) -> None:
             "late_after: 1h\n"
             "inputs:\n  trips: {database: 'sqlite:///state/source.sqlite', table: trips, time_column: started_at}\n"
             "steps:\n  - sql: SELECT zone, COUNT(*) AS rides FROM trips GROUP BY zone\n"
-            f"output: {{path: 'state/warehouse/{name}/{{start:%Y/%m/%d/%H}}.parquet'}}\n")
+            f"output: {{path: 'state/warehouse/{name}/{{start:%Y/%m/%d/%H%z}}.parquet'}}\n")
     for i in range(16):
         name = names[4 + i]
         producers = [names[i]] + ([names[i + 1]] if i % 3 == 0 else [])
@@ -86,7 +86,7 @@ def write_jobs(root: Path) -> None:
             f"description: Rides per zone, layer {i // 4 + 1} of the invented rollups.\n{window}"
             f"inputs:\n{inputs}"
             "steps:\n  - sql: SELECT zone, SUM(rides) AS rides FROM in_0 GROUP BY zone\n"
-            f"output: {{path: 'state/warehouse/{name}/{{start:%Y/%m/%d/%H}}.parquet'}}\n")
+            f"output: {{path: 'state/warehouse/{name}/{{start:%Y/%m/%d/%H%z}}.parquet'}}\n")
 
 
 def utc_text_us(us: int) -> str:
@@ -184,8 +184,8 @@ def old_modules(rev: str):
                               check=True).stdout
         spec = importlib.util.spec_from_loader(f"old_{name}", loader=None)
         module = importlib.util.module_from_spec(spec)
+        sys.modules[f"old_{name}"] = module  # dataclasses look their module up while the class is made
         exec(compile(text, f"{rev}:runner/{name}.py", "exec"), module.__dict__)  # noqa: S102 - our own file
-        sys.modules[f"old_{name}"] = module
         out.append(module)
     return out
 

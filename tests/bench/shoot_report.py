@@ -56,7 +56,7 @@ def arrange(ws: Path) -> None:
 
 
 def shoot(page: Path, out: Path) -> list[Path]:
-    from helpers_browser import Browser
+    from helpers_browser import Browser, clipped_labels
 
     shots = []
     with tempfile.TemporaryDirectory() as profile:
@@ -66,15 +66,20 @@ def shoot(page: Path, out: Path) -> list[Path]:
             errors = b.errors()
             if errors:
                 raise SystemExit(f"the page logged errors: {errors}")
+            cut = clipped_labels(b)
+            if cut:
+                raise SystemExit(f"the page cuts labels: {cut}")
+            b.open(page)  # as it first opens (the check unfolded every job)
 
             def clip(selector: str, name: str, pad: int = 8) -> None:
                 box = b.evaluate(f"(function(){{var e=document.querySelector({selector!r});"
                                  "e.scrollIntoView(); var r=e.getBoundingClientRect();"
                                  "return [r.left+window.scrollX, r.top+window.scrollY, r.width, r.height];})()")
-                x, y, w, h = box
+                _, y, _, h = box
+                # the page's whole width: capturing beyond the viewport drops the scroll bar and widens the
+                # layout a little after the box was measured
                 shot = b.call("Page.captureScreenshot", format="png", captureBeyondViewport=True,
-                              clip={"x": max(x - pad, 0), "y": max(y - pad, 0), "width": min(w + 2 * pad, WIDTH),
-                                    "height": h + 2 * pad, "scale": 1})
+                              clip={"x": 0, "y": max(y - pad, 0), "width": WIDTH, "height": h + 2 * pad, "scale": 1})
                 path = out / name
                 path.write_bytes(base64.b64decode(shot["data"]))
                 shots.append(path)
