@@ -788,7 +788,7 @@ def report(obj: Context, out: Path | None, metrics: Path | None, at: str | None,
     graph. The page fetches nothing. Each file is replaced atomically; nothing
     else is written and nothing is run.
     """
-    from runner import reporting
+    from runner import report as reporting
 
     result = reporting.report(obj.root, _now(at), obj.ledger, out, metrics)
     if as_json:

@@ -121,10 +121,11 @@ def test_window_counts_per_state_equal_the_ledger_read_with_sqlite3(arranged: di
     ran = sum(ledger.values())
     with_files = sum(len(_windows(d)) for d in DAYS)  # zoneinfo
     all_due = with_files + len(_windows(date(2026, 3, 25)))
-    assert value("missing") == with_files - ran  # inputs there, never ran
+    assert value("ready") == with_files - ran  # inputs there, never ran (weir calls them ready)
+    assert ("weir_windows", (("job", "rides_6h"), ("state", "missing"))) not in samples
     assert value("waiting") == all_due - with_files  # no input files yet
     assert value("stale") == 0 and value("running") == 0
-    # a tick would run the missing windows; the failed one has no retries left (retries: 0)
+    # a pulse would run the ready windows; the failed one has no retries left (retries: 0)
     assert samples[("weir_windows_to_run", (("job", "rides_6h"),))] == with_files - ran
 
 
@@ -152,15 +153,36 @@ def test_last_success_and_last_run_equal_the_ledgers_newest_runs(arranged: dict[
 
 
 def test_label_values_with_quotes_backslashes_and_newlines_read_back_unchanged():
-    from runner.metrics import _Family
+    from runner.report.metrics import Family
 
-    family = _Family("weir_test_values", 'Help with a \\ backslash and a "quote".')
+    family = Family("weir_test_values", 'Help with a \\ backslash and a "quote".')
     odd = 'a "quoted" \\path\\ and a\nnew line'
     family.add(3, job=odd, state="done")
     [parsed] = parser.text_string_to_metric_families(family.render())  # prometheus_client's parser
     assert parsed.samples[0].labels == {"job": odd, "state": "done"}
     assert parsed.samples[0].value == 3
     assert parsed.documentation == 'Help with a \\ backslash and a "quote".'
+
+
+def test_watermark_is_where_the_windows_holding_an_output_stop(arranged: dict[str, Any]):
+    # by hand: the 6-hour windows from zoneinfo, in order; the watermark is the start of the first one
+    # whose ledger row (sqlite3) has no good run
+    good = {r["window_key"] for r in ledger_rows(arranged["root"], "SELECT window_key FROM weir_windows WHERE "
+                                                   "job = 'rides_6h' AND good_run_id IS NOT NULL")}
+    reach = None
+    for start, end in (w for d in [*DAYS, date(2026, 3, 25)] for w in _windows(d)):
+        if start.strftime("%Y-%m-%dT%H:%M:%SZ") not in good:
+            break
+        reach = end
+    assert reach is not None and reach < datetime(2026, 3, 24, tzinfo=UTC)  # it stops at the failed window
+    samples = _samples(arranged["text"])
+    assert samples[("weir_watermark_timestamp_seconds", (("job", "rides_6h"),))] == reach.timestamp()
+    assert samples[("weir_windows_not_done_behind_watermark", (("job", "rides_6h"),))] == 0
+    assert samples[("weir_rows_dropped", (("job", "rides_6h"),))] == sum(
+        r["n"] or 0 for r in ledger_rows(arranged["root"], "SELECT r.rows_dropped AS n FROM weir_windows w JOIN "
+                                                          "weir_runs r ON r.id = w.run_id WHERE w.job = 'rides_6h'"))
+    # no deadline is set, so no overdue figure is claimed
+    assert not [k for k in samples if k[0] == "weir_windows_overdue"]
 
 
 def test_metrics_of_a_workspace_that_never_ran_have_no_last_success(tmp_path: Path):
@@ -173,3 +195,22 @@ def test_metrics_of_a_workspace_that_never_ran_have_no_last_success(tmp_path: Pa
     # no input files at all: every due window (zoneinfo count) waits
     due = sum(len(_windows(d)) for d in [*DAYS, date(2026, 3, 25)])
     assert samples[("weir_windows", (("job", "rides_6h"), ("state", "waiting")))] == due
+
+
+def test_metrics_on_their_own_say_what_the_reports_metrics_say(arranged: dict[str, Any]):
+    # `metrics_text` without the page's data takes a lighter path (no drawing); the figures must not differ
+    from runner.ledger import Ledger, default_url
+    from runner.report.data import collect
+    from runner.report.metrics import metrics_text
+    from runner.workspace import load_workspace
+
+    ws = load_workspace(arranged["root"], thorough=False)
+    ledger = Ledger(default_url(ws.root), create=False)
+    at = datetime(2026, 3, 26, 3, tzinfo=UTC)
+    try:
+        alone = _samples(metrics_text(ws, ledger, at))
+        shared = _samples(metrics_text(ws, ledger, at, data=collect(ws, ledger, at)))
+    finally:
+        ledger.dispose()
+    assert alone == shared
+    assert ("weir_windows", (("job", "rides_6h"), ("state", "failed"))) in alone

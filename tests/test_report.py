@@ -1,31 +1,28 @@
-"""`weir report`: the HTML page, checked by Python's html.parser and by a real browser.
+"""`weir report`: the morning page, checked by Python's html.parser and by a real browser.
 
 The workspace is small and arranged so that its days hold known mixes of
 states: an invented bike-share job cut into 4-hour windows over four Lisbon
 days (one day done, one with a failed window and windows never run, one never
-run, one with no input files yet), and a daily job reading it. Expected counts
-come from the ledger read with Python's sqlite3 and from window lengths
-computed with zoneinfo (the IANA tz database), never from weir's report code.
+run, one with no input files yet), and a daily job reading it. What the page
+must show (each job's watermark, its problem ranges, its window counts) is
+computed here by hand from the ledger read with Python's sqlite3 and from the
+windows computed with zoneinfo (the IANA tz database), never from weir's
+report code.
 
 The browser is Debian's Chromium in headless mode, driven over the Chrome
-DevTools Protocol (its JSON-RPC over WebSocket, RFC 6455) with a small
-standard-library client below; the test skips, saying why, when no Chromium
-can be found.
+DevTools Protocol (tests/helpers_browser.py); the browser tests skip, saying
+why, when no Chromium can be found (CI installs it and turns skips into
+failures).
 """
 
 from __future__ import annotations
 
-import base64
-import hashlib
 import json
-import os
+import shlex
 import shutil
-import signal
-import socket
 import subprocess
-import time
-import urllib.parse
-import urllib.request
+import sys
+import zipfile
 from datetime import date, datetime, timedelta
 from html.parser import HTMLParser
 from pathlib import Path
@@ -34,6 +31,7 @@ from zoneinfo import ZoneInfo
 
 import pytest
 from conftest_run import cli, ledger_rows
+from helpers_browser import Browser, clipped_labels
 from helpers_data import TZ, ride_rows, write_rides, write_workspace
 
 AT = "2026-03-26T03:00:00Z"
@@ -224,7 +222,7 @@ def test_report_embeds_names_descriptions_and_errors_as_text_not_markup(arranged
     # html.parser unescapes character references: the texts read back exactly as written in the job files
     texts = "".join(checker.texts_by_id["job-0"])
     assert DESCRIPTION in texts
-    assert CONSUMER in "".join(checker.texts_by_id["counts"])
+    assert CONSUMER in "".join(checker.texts_by_id["reach"])
     # no element came out of the description's or the bad fare's markup
     assert "i" not in checker.tags and "b" in checker.tags  # <b> is the report's own; see the count below
     own_b = arranged["html"].count("<b>")
@@ -242,228 +240,102 @@ def test_report_command_says_where_it_wrote(arranged: dict[str, Any]):
     assert not list(arranged["path"].parent.glob(".report.html.*"))  # no temporary file left behind
 
 
-def test_report_on_a_workspace_that_never_ran_shows_every_window_missing_or_waiting(tmp_path: Path):
+def test_report_on_a_workspace_that_never_ran_shows_every_window_ready_or_waiting(tmp_path: Path):
     root = write_workspace(tmp_path / "ws", {"rides_4h": FOUR_HOURLY})
     write_rides(root, DAYS[0], rows=10)
     result = cli(root, "report", "--at", AT, "--json")
     assert result.exit_code == 0, result.stderr
     info = json.loads(result.stdout)
     # 4-hour windows over 22..25 March (zoneinfo day lengths); the first day has input files, the rest none
-    assert info["counts"]["missing"] == _windows_in_day(DAYS[0])
+    assert info["counts"]["ready"] == _windows_in_day(DAYS[0])
+    assert "missing" not in info["counts"]  # weir's name for it is ready
     assert info["counts"]["waiting"] == sum(_windows_in_day(d) for d in DAYS[1:])
     assert not (root / "state" / "ledger.sqlite").exists()  # reporting never creates a ledger
     assert _parse(Path(info["report"]).read_text(encoding="utf-8")).problems == []
 
 
-def test_jobs_in_different_time_zones_share_a_utc_day_axis(tmp_path: Path):
+def test_jobs_in_different_time_zones_share_a_utc_time_axis(tmp_path: Path):
     tokyo = FOUR_HOURLY.replace(f"timezone: {TZ}", "timezone: Asia/Tokyo").replace("rides_4h/", "rides_4h_east/")
     root = write_workspace(tmp_path / "ws", {"rides_4h": FOUR_HOURLY, "rides_4h_east": tokyo})
     result = cli(root, "report", "--at", AT)
     assert result.exit_code == 0, result.stderr
-    page = (root / "state" / "report.html").read_text(encoding="utf-8")
-    # the first window of the Tokyo job starts at local midnight of 22 March: in UTC (zoneinfo) that is the 21st
-    first = datetime(2026, 3, 22, tzinfo=ZoneInfo("Asia/Tokyo")).astimezone(ZoneInfo("UTC")).date()
-    assert f'data-first-day="{first.isoformat()}"' in page
-    assert "calendar days in UTC" in page
+    checker = _parse((root / "state" / "report.html").read_text(encoding="utf-8"))
+    payload = json.loads(next(body for attrs, body in checker.scripts if attrs.get("id") == "weir-data"))
+    # the axis starts at the Tokyo job's first window, local midnight of 22 March: in UTC (zoneinfo) the 21st
+    first = datetime(2026, 3, 22, tzinfo=ZoneInfo("Asia/Tokyo")).timestamp()
+    assert payload["a0"] == first
+    assert "Times are in UTC" in "".join(checker.texts_by_id["reach"])
+
+
+# ---------------------------------------------------------------- what the page must show, computed by hand
+
+
+def _windows(job: str) -> list[tuple[datetime, datetime]]:
+    """The arranged jobs' windows as UTC (start, end), from the Lisbon calendar by zoneinfo."""
+    zone, utc = ZoneInfo(TZ), ZoneInfo("UTC")
+    out = []
+    for day in DAYS:
+        lo = datetime(day.year, day.month, day.day, tzinfo=zone).astimezone(utc)
+        nxt = day + timedelta(days=1)
+        hi = datetime(nxt.year, nxt.month, nxt.day, tzinfo=zone).astimezone(utc)
+        step = timedelta(hours=4) if job == "rides_4h" else hi - lo
+        t = lo
+        while t < hi:
+            out.append((t, min(t + step, hi)))
+            t += step
+    return out
+
+
+def _local_id(instant: datetime) -> str:
+    """ISO 8601 local time with offset, minutes precision (Python's isoformat, zoneinfo)."""
+    return instant.astimezone(ZoneInfo(TZ)).isoformat(timespec="minutes")
+
+
+def _expected(root: Path, job: str) -> list[dict[str, Any]]:
+    """Every due window of `job` with the state the page must show, from the ledger (sqlite3) and the
+    arrangement: a window without a ledger row is ready when its day has input files, else waiting
+    (for the consumer: waiting, its producer windows are not all done)."""
+    rows = {r["window_key"]: r for r in ledger_rows(
+        root, "SELECT window_key, state, good_run_id FROM weir_windows WHERE job = ?", (job,))}
+    out = []
+    for start, end in _windows(job):
+        row = rows.get(start.strftime("%Y-%m-%dT%H:%M:%SZ"))
+        if row is not None:
+            state, has_output = row["state"], row["good_run_id"] is not None
+        else:
+            with_files = job == "rides_4h" and start.astimezone(ZoneInfo(TZ)).date() in DAYS[:3]
+            state, has_output = ("ready" if with_files else "waiting"), False
+        out.append({"id": _local_id(start), "end": _local_id(end), "state": state, "output": has_output})
+    return out
+
+
+def _watermark(windows: list[dict[str, Any]]) -> str | None:
+    """Where the windows holding an output, from the first on, stop: the start of the first without one."""
+    reach = None
+    for w in windows:
+        if not w["output"]:
+            break
+        reach = w["end"]
+    return reach
+
+
+def _ranges(job: str, windows: list[dict[str, Any]]) -> dict[tuple[str, str], dict[str, Any]]:
+    """Per (job, state) of the windows not done: how many, first window, last end, how many runs of
+    consecutive windows."""
+    out: dict[tuple[str, str], dict[str, Any]] = {}
+    prev = None
+    for w in windows:
+        if w["state"] != "done":
+            entry = out.setdefault((job, w["state"]), {"count": 0, "first": w["id"], "ranges": 0})
+            entry["count"] += 1
+            entry["last_end"] = w["end"]
+            if prev is None or prev["state"] != w["state"]:
+                entry["ranges"] += 1
+        prev = w
+    return out
 
 
 # ---------------------------------------------------------------- the browser
-
-
-def _chromium() -> str | None:
-    for name in ("chromium", "chromium-browser", "google-chrome"):
-        found = shutil.which(name)
-        if found:
-            return found
-    return "/usr/bin/chromium" if Path("/usr/bin/chromium").exists() else None
-
-
-class WebSocket:
-    """A minimal RFC 6455 client: text frames out (masked), text/continuation/ping/close frames in."""
-
-    GUID = "258EAFA5-E914-47DA-95CA-C5AB0DC85B11"
-
-    def __init__(self, url: str, timeout: float = 30.0):
-        parts = urllib.parse.urlsplit(url)
-        self.sock = socket.create_connection((parts.hostname, parts.port), timeout=timeout)
-        key = base64.b64encode(os.urandom(16)).decode()
-        self.sock.sendall((f"GET {parts.path} HTTP/1.1\r\nHost: {parts.hostname}:{parts.port}\r\n"
-                           "Upgrade: websocket\r\nConnection: Upgrade\r\n"
-                           f"Sec-WebSocket-Key: {key}\r\nSec-WebSocket-Version: 13\r\n\r\n").encode())
-        data = b""
-        while b"\r\n\r\n" not in data:
-            chunk = self.sock.recv(4096)
-            if not chunk:
-                raise ConnectionError("closed during the handshake")
-            data += chunk
-        head, self.pending = data.split(b"\r\n\r\n", 1)
-        lines = head.decode("latin-1").split("\r\n")
-        assert " 101 " in lines[0] + " ", lines[0]
-        accept = base64.b64encode(hashlib.sha1((key + self.GUID).encode()).digest()).decode()
-        assert any(line.lower() == f"sec-websocket-accept: {accept}".lower() for line in lines[1:])
-
-    def _read(self, n: int) -> bytes:
-        while len(self.pending) < n:
-            chunk = self.sock.recv(max(65536, n - len(self.pending)))
-            if not chunk:
-                raise ConnectionError("closed")
-            self.pending += chunk
-        out, self.pending = self.pending[:n], self.pending[n:]
-        return out
-
-    def _frame(self, opcode: int, payload: bytes) -> None:
-        mask = os.urandom(4)
-        n = len(payload)
-        head = bytes([0x80 | opcode])
-        if n < 126:
-            head += bytes([0x80 | n])
-        elif n < 65536:
-            head += bytes([0x80 | 126]) + n.to_bytes(2, "big")
-        else:
-            head += bytes([0x80 | 127]) + n.to_bytes(8, "big")
-        body = bytes(b ^ mask[i % 4] for i, b in enumerate(payload))
-        self.sock.sendall(head + mask + body)
-
-    def send(self, text: str) -> None:
-        self._frame(0x1, text.encode())
-
-    def recv(self) -> str:
-        parts: list[bytes] = []
-        while True:
-            b0, b1 = self._read(2)
-            opcode, n = b0 & 0x0F, b1 & 0x7F
-            if n == 126:
-                n = int.from_bytes(self._read(2), "big")
-            elif n == 127:
-                n = int.from_bytes(self._read(8), "big")
-            mask = self._read(4) if b1 & 0x80 else None
-            payload = self._read(n)
-            if mask:
-                payload = bytes(b ^ mask[i % 4] for i, b in enumerate(payload))
-            if opcode == 0x9:
-                self._frame(0xA, payload)
-                continue
-            if opcode == 0x8:
-                raise ConnectionError("the browser closed the connection")
-            if opcode in (0x0, 0x1, 0x2):
-                parts.append(payload)
-                if b0 & 0x80:
-                    return b"".join(parts).decode()
-
-    def close(self) -> None:
-        self.sock.close()
-
-
-class Browser:
-    """Headless Chromium with one page, driven over the DevTools protocol."""
-
-    def __init__(self, profile: Path, width: int = 1400, height: int = 1000):
-        exe = _chromium()
-        if exe is None:
-            pytest.skip("no Chromium found (install Debian's `chromium` package; .ci/run does)")
-        profile.mkdir(parents=True, exist_ok=True)
-        scratch = profile.parent / "tmp"  # Chromium's own temporary files stay under the test's folder
-        scratch.mkdir(exist_ok=True)
-        self.proc = subprocess.Popen(
-            [exe, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-             "--disable-background-networking", "--disable-component-update", "--disable-sync",
-             "--disable-extensions", "--disable-default-apps", "--mute-audio", f"--user-data-dir={profile}",
-             "--remote-debugging-port=0", f"--window-size={width},{height}", "about:blank"],
-            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True,
-            env={**os.environ, "TMPDIR": str(scratch)})
-        self.events: list[dict[str, Any]] = []
-        self._id = 0
-        port_file = profile / "DevToolsActivePort"
-        deadline = time.monotonic() + 30
-        while not (port_file.exists() and port_file.read_text().count("\n") >= 1):
-            if self.proc.poll() is not None or time.monotonic() > deadline:
-                self.close()
-                pytest.skip(f"Chromium ({exe}) did not start a DevTools endpoint")
-            time.sleep(0.05)
-        port = int(port_file.read_text().split("\n")[0])
-        with urllib.request.urlopen(f"http://127.0.0.1:{port}/json/list", timeout=10) as resp:  # localhost only
-            targets = json.load(resp)
-        page = next(t for t in targets if t["type"] == "page")
-        self.ws = WebSocket(page["webSocketDebuggerUrl"])
-        for domain in ("Page", "Runtime", "Log"):
-            self.call(f"{domain}.enable")
-        self.call("Emulation.setDeviceMetricsOverride", width=width, height=height, deviceScaleFactor=1,
-                  mobile=False)
-
-    def call(self, method: str, **params: Any) -> dict[str, Any]:
-        self._id += 1
-        self.ws.send(json.dumps({"id": self._id, "method": method, "params": params}))
-        while True:
-            msg = json.loads(self.ws.recv())
-            if msg.get("id") == self._id:
-                if "error" in msg:
-                    raise RuntimeError(f"{method}: {msg['error']}")
-                return msg.get("result", {})
-            if "method" in msg:
-                self.events.append(msg)
-
-    def wait_for(self, method: str, timeout: float = 30.0) -> dict[str, Any]:
-        deadline = time.monotonic() + timeout
-        seen = len([e for e in self.events if e["method"] == method])
-        while time.monotonic() < deadline:
-            found = [e for e in self.events if e["method"] == method]
-            if len(found) > seen:
-                return found[-1]
-            msg = json.loads(self.ws.recv())
-            if "method" in msg:
-                self.events.append(msg)
-        raise TimeoutError(method)
-
-    def open(self, path: Path) -> None:
-        self.events.clear()
-        self.call("Page.navigate", url=path.resolve().as_uri())
-        self.wait_for("Page.loadEventFired")
-
-    def evaluate(self, expression: str) -> Any:
-        result = self.call("Runtime.evaluate", expression=expression, returnByValue=True, awaitPromise=True)
-        if "exceptionDetails" in result:
-            raise RuntimeError(result["exceptionDetails"])
-        return result["result"].get("value")
-
-    def click(self, x: float, y: float) -> None:
-        self.call("Input.dispatchMouseEvent", type="mouseMoved", x=x, y=y)
-        self.call("Input.dispatchMouseEvent", type="mousePressed", x=x, y=y, button="left", clickCount=1)
-        self.call("Input.dispatchMouseEvent", type="mouseReleased", x=x, y=y, button="left", clickCount=1)
-
-    def errors(self) -> list[str]:
-        """Console errors, uncaught exceptions and browser log errors seen since the page was opened."""
-        out = []
-        for e in self.events:
-            p = e.get("params", {})
-            if e["method"] == "Runtime.exceptionThrown":
-                out.append(json.dumps(p.get("exceptionDetails", {}))[:500])
-            elif e["method"] == "Runtime.consoleAPICalled" and p.get("type") in ("error", "assert", "warning"):
-                out.append(json.dumps(p.get("args", []))[:500])
-            elif e["method"] == "Log.entryAdded" and p.get("entry", {}).get("level") in ("error", "warning"):
-                out.append(p["entry"].get("text", "")[:500])
-        return out
-
-    def screenshot(self, path: Path) -> None:
-        shot = self.call("Page.captureScreenshot", format="png", captureBeyondViewport=True)
-        path.write_bytes(base64.b64decode(shot["data"]))
-
-    def close(self) -> None:
-        try:
-            if getattr(self, "ws", None) is not None:
-                try:
-                    self.call("Browser.close")  # a clean exit removes its temporary files
-                    self.proc.wait(timeout=10)
-                except (OSError, RuntimeError, ConnectionError, subprocess.TimeoutExpired):
-                    pass
-                self.ws.close()
-        finally:
-            if self.proc.poll() is None:
-                os.killpg(self.proc.pid, signal.SIGTERM)  # its own session: only what this test started
-                try:
-                    self.proc.wait(timeout=10)
-                except subprocess.TimeoutExpired:
-                    os.killpg(self.proc.pid, signal.SIGKILL)
-                    self.proc.wait(timeout=10)
 
 
 @pytest.fixture(scope="module")
@@ -475,99 +347,158 @@ def browser(tmp_path_factory: pytest.TempPathFactory):
         b.close()
 
 
-def _cell_detail(browser: Browser, job: str, day: date) -> dict[str, Any]:
-    """Click the matrix cell of `job` on `day` as a user would and read the counts the page then shows."""
-    box = browser.evaluate(f"weirReport.cellCenter({json.dumps(job)}, {json.dumps(day.isoformat())})")
-    assert box is not None, (job, day)
-    browser.click(box["x"], box["y"])
-    tip = browser.evaluate("document.getElementById('tip').hidden ? '' : document.getElementById('tip').textContent")
-    shown = browser.evaluate(
-        "(function(){var c=document.querySelector('#detail .cnt'); if(!c){return null;} var o={};"
-        "for (var i=0;i<c.attributes.length;i++){o[c.attributes[i].name]=c.attributes[i].value;}"
-        "o.text=c.textContent; o.rows=document.querySelectorAll('#detail tbody tr').length; return o;})()")
-    assert shown is not None
-    shown["tip"] = tip
-    return shown
+@pytest.fixture(scope="module")
+def shown(arranged: dict[str, Any], browser: Browser) -> dict[str, Any]:
+    """The page opened in Chromium, and what it shows, read from its DOM."""
+    browser.open(arranged["path"])
+    return browser.evaluate("""(function(){
+      var rows = {};
+      document.querySelectorAll('table.overview tbody tr').forEach(function(tr){
+        var wm = tr.querySelector('[data-watermark]');
+        rows[tr.getAttribute('data-job')] = {watermark: wm ? wm.getAttribute('data-watermark') : null,
+          states: tr.querySelector('td.states').textContent};
+      });
+      var problems = Array.from(document.querySelectorAll('li.problem')).map(function(li){
+        return {job: li.getAttribute('data-job'), state: li.getAttribute('data-state'),
+          first: li.getAttribute('data-first'), last_end: li.getAttribute('data-last-end'),
+          count: Number(li.getAttribute('data-count')), ranges: Number(li.getAttribute('data-ranges')),
+          text: li.textContent, commands: Array.from(li.querySelectorAll('code.command')).map(
+            function(c){ return c.textContent; })};
+      });
+      return {overview: rows, problems: problems, errors: document.documentElement.getAttribute('data-script-errors')};
+    })()""")
 
 
-def _number_in_cell(browser: Browser, job: str, day: date) -> str | None:
-    """The text drawn in the matrix cell of `job` on `day` (found by where it is drawn on screen)."""
-    return browser.evaluate(
-        f"(function(){{var c=weirReport.cellCenter({json.dumps(job)}, {json.dumps(day.isoformat())});"
-        "var found=null; document.querySelectorAll('#matrix .counts text').forEach(function(t){"
-        "var b=t.getBoundingClientRect(); if (Math.abs((b.left+b.right)/2-c.x)<4 && Math.abs((b.top+b.bottom)/2-c.y)<8)"
-        "{found=t.textContent;}}); return found;})()")
+def test_browser_shows_each_jobs_watermark_as_computed_from_the_ledger(arranged: dict[str, Any],
+                                                                        shown: dict[str, Any]):
+    root = arranged["root"]
+    assert shown["errors"] is None
+    for job in ("rides_4h", CONSUMER):
+        expected = _watermark(_expected(root, job))
+        assert shown["overview"][job]["watermark"] == expected, job
+    # the arrangement holds: both reach into 23 March and stop there
+    assert shown["overview"]["rides_4h"]["watermark"].startswith("2026-03-23T")
+    assert shown["overview"][CONSUMER]["watermark"] == "2026-03-23T00:00+00:00"
 
 
-def test_browser_shows_the_ledgers_counts_per_day_without_script_errors(arranged: dict[str, Any],
-                                                                         browser: Browser, tmp_path: Path):
+def test_browser_lists_each_problem_range_as_computed_from_the_ledger(arranged: dict[str, Any],
+                                                                      shown: dict[str, Any]):
+    root = arranged["root"]
+    expected = {**_ranges("rides_4h", _expected(root, "rides_4h")), **_ranges(CONSUMER, _expected(root, CONSUMER))}
+    assert {k[1] for k in expected} == {"failed", "ready", "waiting"}  # the arrangement holds
+    listed = {(p["job"], p["state"]): {"count": p["count"], "first": p["first"], "ranges": p["ranges"],
+                                       "last_end": p["last_end"]} for p in shown["problems"]}
+    assert len(listed) == len(shown["problems"])  # one entry per job and state here (one reason each)
+    assert listed == expected
+    # the failed window's error reads as text, with the fare's markup characters intact
+    failed = next(p for p in shown["problems"] if p["state"] == "failed")
+    assert BAD_FARE in failed["text"]
+
+
+def test_browser_says_every_state_in_words_and_glyphs_not_only_colour(arranged: dict[str, Any],
+                                                                      shown: dict[str, Any], browser: Browser):
+    from runner.report.data import GLYPH
+
+    root = arranged["root"]
+    for job in ("rides_4h", CONSUMER):
+        counts: dict[str, int] = {}
+        for w in _expected(root, job):
+            counts[w["state"]] = counts.get(w["state"], 0) + 1
+        text = shown["overview"][job]["states"]
+        for state, n in counts.items():
+            if state != "done":
+                assert f"{GLYPH[state]} {n} {state}" in text, (job, state, text)
+    for p in shown["problems"]:
+        assert f"{GLYPH[p['state']]} {p['state']}" in p["text"]
+    # every state drawn in a timeline or bar carries its name; each has a legend entry with its own pattern
+    titles = browser.evaluate("Array.from(document.querySelectorAll('svg path[class^=\"s-\"] > title'))"
+                              ".map(function(t){return t.textContent;})")
+    assert titles and all(t.split(" ", 1)[1] in GLYPH for t in titles)
+    legend = browser.evaluate("Array.from(document.querySelectorAll('.legend b')).map(function(b){"
+                              "return b.textContent;})")
+    for state in ("failed", "stale", "waiting", "ready", "running", "done"):
+        assert f"{GLYPH[state]} {state}" in legend
+
+
+def test_patterns_differ_in_shape_not_only_in_colour():
+    import re
+
+    from runner.report.svg import PATTERNS
+
+    # with every colour taken out, the six textures are still six different drawings
+    shapes = {state: re.sub(r'(fill|stroke)="[^"]*"', "", body) for state, body in PATTERNS.items()}
+    assert len(set(shapes.values())) == len(shapes)
+
+
+def test_every_command_shown_parses_as_a_weir_command(arranged: dict[str, Any], shown: dict[str, Any]):
+    import click
+
+    from runner.cli import cli as weir_cli
+
+    commands = [c for p in shown["problems"] for c in p["commands"]]
+    assert any(c.startswith("weir backfill ") for c in commands)
+    for command in commands:
+        args = shlex.split(command)  # as a POSIX shell splits the pasted line
+        assert args[0] == "weir"
+        sub = weir_cli.get_command(click.Context(weir_cli), args[1])
+        assert sub is not None, command
+        sub.make_context(args[1], args[2:])  # click's own parser: raises on an unknown option or a bad value
+    # the failed range's command, dry-run, names exactly the failed window the ledger holds (sqlite3)
+    failed = next(p for p in shown["problems"] if p["state"] == "failed")
+    run = next(c for c in failed["commands"] if " backfill " in c)
+    result = cli(arranged["root"], *shlex.split(run)[1:], "--dry-run", "--at", AT, "--json")
+    assert result.exit_code == 0, result.stderr
+    [row] = ledger_rows(arranged["root"], "SELECT window_id FROM weir_windows WHERE job = 'rides_4h' AND "
+                                          "state = 'failed'")
+    planned = json.loads(result.stdout)["windows"]
+    assert [w["window"] for w in planned if w["job"] == "rides_4h"] == [row["window_id"]]
+    # its reader waits for that window, so the command carries --downstream and plans the reader's day too
+    assert "--downstream" in run and [w["window"] for w in planned if w["job"] == CONSUMER] == [
+        _local_id(datetime(2026, 3, 23, tzinfo=ZoneInfo(TZ)))]
+
+
+def test_browser_clips_no_label_and_the_page_fits_its_width(arranged: dict[str, Any], browser: Browser):
+    browser.open(arranged["path"])
+    clipped = clipped_labels(browser)
+    assert clipped == []
+    # the axis under the bars shows its labels (some may be left out, none is cut)
+    assert browser.evaluate("document.querySelectorAll('.axis-labels .al:not(.hidden)').length") >= 2
+    assert browser.errors() == []
+
+
+def test_browser_lists_a_clicked_windows_last_runs_as_the_ledger_holds_them(arranged: dict[str, Any],
+                                                                            browser: Browser):
     root = arranged["root"]
     browser.open(arranged["path"])
-    assert browser.evaluate("document.documentElement.getAttribute('data-script-errors')") is None
-    assert browser.evaluate("typeof weirReport") == "object"
-
-    # 23 March: windows before 16:00 ran (one failed by arrangement), the rest never ran though files are there
-    day = DAYS[1]
-    ledger = _ledger_counts(root, "rides_4h", day)  # Python's sqlite3 over the ledger
-    expected_missing = _windows_in_day(day) - sum(ledger.values())  # zoneinfo day length
-    assert ledger.get("failed") == 1 and expected_missing > 0  # the arrangement holds
-    shown = _cell_detail(browser, "rides_4h", day)
-    assert int(shown["data-done"]) == ledger.get("done", 0)
-    assert int(shown["data-failed"]) == ledger["failed"]
-    assert int(shown["data-missing"]) == expected_missing
-    assert shown["rows"] == _windows_in_day(day)
-    assert f"failed {ledger['failed']}" in shown["tip"] and f"missing {expected_missing}" in shown["tip"]
-    # the number drawn inside the cell is how many of its windows are not done
-    assert _number_in_cell(browser, "rides_4h", day) == str(ledger["failed"] + expected_missing)
-
-    # 22 March: every window ran and is done (sqlite3 count == zoneinfo count)
-    ledger = _ledger_counts(root, "rides_4h", DAYS[0])
-    shown = _cell_detail(browser, "rides_4h", DAYS[0])
-    assert ledger == {"done": _windows_in_day(DAYS[0])}
-    assert int(shown["data-done"]) == ledger["done"] and int(shown["data-failed"]) == 0
-    assert _number_in_cell(browser, "rides_4h", DAYS[0]) is None  # nothing to count: all done
-    # each listed window's last run: the figures of the run its ledger row points at (sqlite3)
-    lo, hi = _utc_bounds(DAYS[0])
+    point = browser.evaluate("weirReport.pointFor('rides_4h', '2026-03-22T10:00+00:00')")
+    browser.click(point["x"], point["y"])
+    listed = browser.evaluate("Array.from(document.querySelectorAll('#wl-0 tbody tr')).map(function(r){"
+                              "return [r.className].concat(Array.from(r.cells).map(function(c){"
+                              "return c.textContent;}));})")
     runs = {r["window_id"]: r for r in ledger_rows(
-        root, "SELECT w.window_id, r.seconds, r.rows_written, r.fingerprint, r.finished_at FROM weir_windows w "
-              "JOIN weir_runs r ON r.id = w.run_id WHERE w.job = 'rides_4h' AND w.window_key >= ? "
-              "AND w.window_key < ?", (lo, hi))}
-    listed = browser.evaluate("Array.from(document.querySelectorAll('#detail tbody tr')).map(function(r){"
-                              "return Array.from(r.cells).map(function(c){return c.textContent;});})")
-    assert sorted(row[0] for row in listed) == sorted(runs)
-    for window_id, state, finished, duration, rows, fingerprint, _reason in listed:
-        run = runs[window_id]
-        assert state.endswith("done")
-        assert finished.startswith(f"{run['finished_at'][:10]} {run['finished_at'][11:16]}Z")
+        root, "SELECT w.window_id, r.seconds, r.rows_written, r.finished_at FROM weir_windows w "
+              "JOIN weir_runs r ON r.id = w.run_id WHERE w.job = 'rides_4h'")}
+    assert listed, "a click on the timeline lists windows"
+    here = [row for row in listed if "here" in row[0]]
+    assert [row[1] for row in here] == ["2026-03-22T08:00+00:00"]  # the window holding 10:00 (4-hour windows)
+    every = {w["id"]: w for w in _expected(root, "rides_4h")}
+    for _cls, window_id, state, finished, duration, rows, _reason in listed:
+        assert state.split(" ")[1] == every[window_id]["state"]
+        run = runs.get(window_id)
+        if run is None:
+            assert finished == "never"
+            continue
+        assert finished.startswith(f"{run['finished_at'][:10]} {run['finished_at'][11:16]} UTC")
         assert float(duration.removesuffix(" s")) == pytest.approx(run["seconds"], abs=0.006)
-        assert int(rows.replace(",", "")) == run["rows_written"]
-        assert fingerprint == run["fingerprint"][:6]
-
-    # 25 March: no input files were written, nothing ran: every window waits
-    shown = _cell_detail(browser, "rides_4h", DAYS[3])
-    assert _ledger_counts(root, "rides_4h", DAYS[3]) == {}
-    assert int(shown["data-waiting"]) == _windows_in_day(DAYS[3])
-
-    # the consumer: 22 March ran (sqlite3), 23 March waits for its producer's failed and missing windows
-    assert _ledger_counts(root, CONSUMER, DAYS[0]) == {"done": 1}
-    assert int(_cell_detail(browser, CONSUMER, DAYS[0])["data-done"]) == 1
-    assert int(_cell_detail(browser, CONSUMER, DAYS[1])["data-waiting"]) == 1
-
-    # the failed window's error shows as text, with the fare's markup characters intact and no element made
-    _cell_detail(browser, "rides_4h", DAYS[1])
-    detail_text = browser.evaluate("document.getElementById('detail').textContent")
-    assert BAD_FARE in detail_text
-    assert browser.evaluate("document.querySelectorAll('#detail b, #detail i').length") == 0
-
-    browser.screenshot(tmp_path / "report.png")
-    assert (tmp_path / "report.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (RFC 2083)
+        if run["rows_written"] is not None:
+            assert int(rows.split(" ")[0].replace(",", "")) == run["rows_written"]
     assert browser.errors() == []
 
 
 def test_window_figures_survive_the_trip_through_the_page_encoding(arranged: dict[str, Any], browser: Browser):
     import polars as pl
 
-    from runner.report import vlq
+    from runner.report.encoding import vlq
 
     values = [0, 1, -1, 15, 16, -16, 31, 32, 123, 1023, 1024, -99999, 86_400, 3_600 * 24 * 366, 2**40 + 5, None,
               7, None, -(2**33)]
@@ -581,7 +512,7 @@ def test_window_figures_survive_the_trip_through_the_page_encoding(arranged: dic
 def test_numbers_are_encoded_as_base64_vlq():
     import polars as pl
 
-    from runner.report import vlq
+    from runner.report.encoding import vlq
 
     # Base64 VLQ as in the source map format (revision 3), values as commonly quoted for it (from memory):
     # 0 -> "A", 1 -> "C", -1 -> "D", 15 -> "e", 16 -> "gB", 123 -> "2H"
@@ -589,13 +520,87 @@ def test_numbers_are_encoded_as_base64_vlq():
     assert vlq(pl.Series([None], dtype=pl.Int64)) == "B"
 
 
-def test_browser_keyboard_moves_the_selection_between_days(arranged: dict[str, Any], browser: Browser):
-    browser.open(arranged["path"])
-    _cell_detail(browser, "rides_4h", DAYS[1])
-    browser.call("Input.dispatchKeyEvent", type="keyDown", key="ArrowLeft", code="ArrowLeft",
-                 windowsVirtualKeyCode=37)
-    browser.call("Input.dispatchKeyEvent", type="keyUp", key="ArrowLeft", code="ArrowLeft",
-                 windowsVirtualKeyCode=37)
-    shown = browser.evaluate("document.querySelector('#detail .cnt').getAttribute('data-day')")
-    assert shown == DAYS[0].isoformat()
-    assert browser.errors() == []
+# ---------------------------------------------------------------- shapes, without a browser
+
+
+def test_month_ticks_follow_the_calendar_and_no_label_passes_the_right_edge():
+    import re
+
+    from runner.report.svg import axis_labels, text_width, ticks
+    from runner.timeutil import to_us
+
+    zone = ZoneInfo(TZ)
+    lo, hi = datetime(2025, 8, 10, tzinfo=zone), datetime(2025, 11, 3, tzinfo=zone)
+    marks = ticks((to_us(lo), to_us(hi)), zone, 400)
+    # the first of each month inside the span, by the Lisbon calendar (zoneinfo); months read "Sep" etc.
+    firsts = [datetime(2025, m, 1, tzinfo=zone) for m in (9, 10, 11)]
+    assert [t for _, t in marks] == ["Sep 2025", "Oct", "Nov"]
+    utc = ZoneInfo("UTC")  # absolute time: Python subtracts two times of one zone on the wall clock
+    for (x, _), first in zip(marks, firsts, strict=True):
+        assert x == pytest.approx((first.astimezone(utc) - lo.astimezone(utc)) / (hi.astimezone(utc) - lo.astimezone(utc))
+                                  * 400)
+    # "Nov" starts 10 units before the right edge: it is drawn whole, ending at the edge
+    assert 400 - marks[-1][0] < text_width("Nov", 11)
+    svg = axis_labels(marks, 0, 400, 12)
+    assert 'text-anchor="end">Nov<' in svg
+    for x, anchor, label in re.findall(r'x="([\d.]+)" y="[\d.]+" text-anchor="(\w+)">([^<]+)<', svg):
+        right = float(x) + (text_width(label, 11) if anchor == "start" else 0)
+        assert right <= 400 + 0.5, label
+
+
+def test_overdue_windows_are_those_past_the_deadline_and_not_done():
+    """Issue 15, deadlines: at a clock past the deadline exactly the windows past it are overdue."""
+    import polars as pl
+
+    from runner.report.data import with_shown_states
+    from runner.timeutil import to_us
+
+    zone = ZoneInfo(TZ)
+    days = [date(2026, 3, 28) + timedelta(days=i) for i in range(5)]
+    # local days 28 to 31 March (zoneinfo: the 29th lasts 23 hours)
+    starts = [datetime(d.year, d.month, d.day, tzinfo=zone) for d in days[:4]]
+    ends = [datetime(d.year, d.month, d.day, tzinfo=zone) for d in days[1:]]
+    frame = pl.DataFrame({"start_us": [to_us(s) for s in starts], "end_us": [to_us(e) for e in ends],
+                          "state": ["done", "failed", "missing", "waiting"], "output": [None] * 4},
+                         schema_overrides={"output": pl.String})
+    at = datetime(2026, 3, 31, 5, 30, tzinfo=zone)
+    deadline = timedelta(hours=6)
+    shaped = with_shown_states(frame, at, deadline)
+    # by hand: not done and end + 6 h <= 05:30 on the 31st. The failed window ended on the 30th at 00:00
+    # (overdue since 06:00 that day); the ready one ended on the 31st at 00:00 and is due by 06:00 (not
+    # yet); the waiting one has not even ended; the done one is never overdue
+    assert shaped["overdue"].to_list() == [False, True, False, False]
+    assert shaped["state"].to_list() == ["done", "failed", "ready", "waiting"]
+    assert not with_shown_states(frame, at, None)["overdue"].any()
+
+
+# ---------------------------------------------------------------- the files the page is made of
+
+
+def test_the_wheel_carries_the_pages_template_style_and_script(tmp_path: Path):
+    # an editable install reads the assets from the source tree and would hide a missing package-data line
+    repo = Path(__file__).resolve().parent.parent
+    src = tmp_path / "src"
+    shutil.copytree(repo / "runner", src / "runner", ignore=shutil.ignore_patterns("__pycache__"))
+    for name in ("pyproject.toml", "README.md"):
+        shutil.copy(repo / name, src / name)
+    done = subprocess.run([sys.executable, "-m", "pip", "wheel", "--no-deps", "--no-build-isolation", "--no-index",
+                           "-q", "-w", str(tmp_path / "dist"), str(src)], capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
+    [wheel] = (tmp_path / "dist").glob("weir-*.whl")
+    names = set(zipfile.ZipFile(wheel).namelist())
+    for asset in ("page.html", "report.css", "report.js"):
+        assert f"runner/report/assets/{asset}" in names
+
+
+def test_the_pages_script_parses(tmp_path: Path):
+    node = shutil.which("node") or shutil.which("nodejs")
+    if node is None:
+        pytest.skip("no node found (install Debian's `nodejs` package; .ci/run does)")
+    script = Path(__file__).resolve().parent.parent / "runner" / "report" / "assets" / "report.js"
+    done = subprocess.run([node, "--check", str(script)], capture_output=True, text=True, timeout=60)
+    assert done.returncode == 0, done.stderr
+    # and a script with a syntax error fails the same check, so the check can fail
+    broken = tmp_path / "broken.js"
+    broken.write_text(script.read_text(encoding="utf-8") + "\n(function () {\n", encoding="utf-8")
+    assert subprocess.run([node, "--check", str(broken)], capture_output=True, timeout=60).returncode != 0

@@ -2,7 +2,12 @@
 
 Run by hand (not collected by pytest):
 
-    python tests/bench/bench_report.py [--dir DIR] [--repeats N] [--no-browser]
+    python tests/bench/bench_report.py [--dir DIR] [--repeats N] [--no-browser] [--baseline REV]
+
+The page is measured side by side with the report as it was at git revision
+--baseline (default 76b34c1, the last one with runner/report.py): its
+report.py and metrics.py are loaded from git into modules of their own and
+run on the same workspace and ledger in the same rounds, old and new in turn.
 
 It writes a workspace of 20 invented bike-share jobs (4 reading a database
 table, 16 reading earlier jobs, in 5 layers), all hourly in Europe/Lisbon over
@@ -21,6 +26,7 @@ from __future__ import annotations
 import argparse
 import gc
 import gzip
+import importlib.util
 import os
 import platform
 import random
@@ -35,14 +41,16 @@ import polars as pl
 import sqlalchemy as sa
 
 HERE = Path(__file__).resolve().parent
-sys.path.insert(0, str(HERE.parent))  # the tests folder: the DevTools client lives in test_report.py
+sys.path.insert(0, str(HERE.parent))  # the tests folder: the DevTools client (helpers_browser.py)
 
 from runner import fingerprint as fp  # noqa: E402
 from runner import ledger as ledger_mod  # noqa: E402
 from runner.execute import spec_and_code  # noqa: E402
-from runner.metrics import metrics_text  # noqa: E402
 from runner.planner import Snapshot, _upstream, assess_job  # noqa: E402
-from runner.report import build_report, collect, render, write_report  # noqa: E402
+from runner.report import build_report, write_report  # noqa: E402
+from runner.report.data import collect  # noqa: E402
+from runner.report.metrics import metrics_text  # noqa: E402
+from runner.report.page import render  # noqa: E402
 from runner.workspace import load_workspace  # noqa: E402
 
 AT = datetime(2026, 1, 1, 0, 30, tzinfo=UTC)  # every window of 2025 (Lisbon) is due
@@ -69,7 +77,7 @@ def write_jobs(root: Path) -> None:
             "late_after: 1h\n"
             "inputs:\n  trips: {database: 'sqlite:///state/source.sqlite', table: trips, time_column: started_at}\n"
             "steps:\n  - sql: SELECT zone, COUNT(*) AS rides FROM trips GROUP BY zone\n"
-            f"output: {{path: 'state/warehouse/{name}/{{start:%Y/%m/%d/%H}}.parquet'}}\n")
+            f"output: {{path: 'state/warehouse/{name}/{{start:%Y/%m/%d/%H%z}}.parquet'}}\n")
     for i in range(16):
         name = names[4 + i]
         producers = [names[i]] + ([names[i + 1]] if i % 3 == 0 else [])
@@ -78,7 +86,7 @@ def write_jobs(root: Path) -> None:
             f"description: Rides per zone, layer {i // 4 + 1} of the invented rollups.\n{window}"
             f"inputs:\n{inputs}"
             "steps:\n  - sql: SELECT zone, SUM(rides) AS rides FROM in_0 GROUP BY zone\n"
-            f"output: {{path: 'state/warehouse/{name}/{{start:%Y/%m/%d/%H}}.parquet'}}\n")
+            f"output: {{path: 'state/warehouse/{name}/{{start:%Y/%m/%d/%H%z}}.parquet'}}\n")
 
 
 def utc_text_us(us: int) -> str:
@@ -167,43 +175,62 @@ def fill_ledger(root: Path, seed: int = 7) -> int:
     return written
 
 
-def best_of(fn, repeats: int):
-    best, result = float("inf"), None
+def old_modules(rev: str):
+    """The report and metrics modules as they were at git revision `rev`, loaded under names of their own."""
+    repo = HERE.parent.parent
+    out = []
+    for name in ("report", "metrics"):
+        text = subprocess.run(["git", "show", f"{rev}:runner/{name}.py"], cwd=repo, capture_output=True, text=True,
+                              check=True).stdout
+        spec = importlib.util.spec_from_loader(f"old_{name}", loader=None)
+        module = importlib.util.module_from_spec(spec)
+        sys.modules[f"old_{name}"] = module  # dataclasses look their module up while the class is made
+        exec(compile(text, f"{rev}:runner/{name}.py", "exec"), module.__dict__)  # noqa: S102 - our own file
+        out.append(module)
+    return out
+
+
+def rounds(fns: dict[str, object], repeats: int) -> dict[str, tuple[float, object]]:
+    """Best time of each function over `repeats` rounds, the functions taking turns within a round."""
+    best: dict[str, tuple[float, object]] = {k: (float("inf"), None) for k in fns}
     for _ in range(repeats):
-        gc.collect()
-        t0 = time.perf_counter()
-        result = fn()
-        best = min(best, time.perf_counter() - t0)
-    return best, result
+        for key, fn in fns.items():
+            gc.collect()
+            t0 = time.perf_counter()
+            result = fn()
+            took = time.perf_counter() - t0
+            if took < best[key][0]:
+                best[key] = (took, result)
+    return best
 
 
-def browser_load(page: Path, shot: Path, repeats: int) -> dict[str, float]:
-    from test_report import Browser  # the suite's DevTools client
+def browser_load(page: Path, repeats: int, new: bool) -> dict[str, float]:
+    from helpers_browser import Browser
 
     with tempfile.TemporaryDirectory() as profile:
         b = Browser(Path(profile) / "profile", width=1400, height=1000)
         try:
-            loads, dcl, loaded = [], [], []
+            loads = []
             for _ in range(repeats):
                 t0 = time.perf_counter()
                 b.open(page)
                 loads.append(time.perf_counter() - t0)
-                nav = b.evaluate("(function(){var n=performance.getEntriesByType('navigation')[0];"
-                                 "return [n.domContentLoadedEventEnd, n.loadEventEnd];})()")
-                dcl.append(nav[0] / 1000)
-                loaded.append(nav[1] / 1000)
             errors = b.errors()
-            click = b.evaluate("(function(){var t=performance.now(); weirReport.select(7, 40);"
-                               "var a=performance.now()-t; t=performance.now(); weirReport.select(7, 41);"
-                               "return [a, performance.now()-t];})()")
+            if new:  # list the windows around a time, twice (the first decodes the job's arrays)
+                click = b.evaluate("(function(){var t=performance.now(); weirReport.listAt('zone_rollup_03', "
+                                   "'2025-06-01T12:00+01:00'); var a=performance.now()-t; t=performance.now(); "
+                                   "weirReport.listAt('zone_rollup_03', '2025-06-02T12:00+01:00');"
+                                   "return [a, performance.now()-t];})()")
+            else:
+                click = b.evaluate("(function(){var t=performance.now(); weirReport.select(7, 40);"
+                                   "var a=performance.now()-t; t=performance.now(); weirReport.select(7, 41);"
+                                   "return [a, performance.now()-t];})()")
             nodes = b.evaluate("document.getElementsByTagName('*').length")
             heap = b.call("Runtime.getHeapUsage")
-            b.screenshot(shot)
         finally:
             b.close()
-    return {"wall": min(loads), "dcl": min(dcl), "load": min(loaded), "first_click": click[0] / 1000,
-            "next_click": click[1] / 1000, "nodes": nodes, "heap_mb": heap["usedSize"] / 2**20,
-            "errors": len(errors)}
+    return {"wall": min(loads), "first_click": click[0] / 1000, "next_click": click[1] / 1000, "nodes": nodes,
+            "heap_mb": heap["usedSize"] / 2**20, "errors": len(errors)}
 
 
 def machine() -> str:
@@ -222,6 +249,7 @@ def main() -> None:
     ap.add_argument("--dir", type=Path, help="workspace folder to (re)use; default: a temporary one")
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--no-browser", action="store_true")
+    ap.add_argument("--baseline", default="76b34c1", help="git revision of the old report to compare with")
     args = ap.parse_args()
     tmp = None
     if args.dir is None:
@@ -235,35 +263,46 @@ def main() -> None:
         t0 = time.perf_counter()
         n = fill_ledger(root)
         print(f"ledger: {n:,} window rows written in {time.perf_counter() - t0:.1f} s ({root})")
+    old_report, old_metrics = old_modules(args.baseline)
     ws = load_workspace(root, thorough=False)
     ledger = ledger_mod.Ledger(ledger_mod.default_url(root), create=False)
     from runner.status import survey
 
-    t_survey, _ = best_of(lambda: survey(ws, ledger, AT, None), args.repeats)
-    t_collect, data = best_of(lambda: collect(ws, ledger, AT), args.repeats)
-    t_render, page = best_of(lambda: render(data), args.repeats)
-    t_build, page = best_of(lambda: build_report(ws, ledger, AT), args.repeats)
-    t_metrics, text = best_of(lambda: metrics_text(ws, ledger, AT), args.repeats)
-    t_metrics_reuse, _ = best_of(lambda: metrics_text(ws, ledger, AT, assessed=data.assessed), args.repeats)
-    out = write_report(root / "state" / "report.html", page)
-    size = out.stat().st_size
-    total = sum(v.total for v in data.jobs)
-    counts = {s: sum(v.counts[s] for v in data.jobs) for s in data.jobs[0].counts}
+    old_data = old_report.collect(ws, ledger, AT)
+    data = collect(ws, ledger, AT)
+    best = rounds({
+        "survey (plan's input check)": lambda: survey(ws, ledger, AT, None, extras=True),
+        "survey (every window's inputs)": lambda: survey(ws, ledger, AT, None, recheck_all=True, extras=True),
+        "old build_report": lambda: old_report.build_report(ws, ledger, AT),
+        "new build_report": lambda: build_report(ws, ledger, AT),
+        "old collect": lambda: old_report.collect(ws, ledger, AT),
+        "new collect": lambda: collect(ws, ledger, AT),
+        "old render": lambda: old_report.render(old_data),
+        "new render": lambda: render(data),
+        "old metrics_text alone": lambda: old_metrics.metrics_text(ws, ledger, AT),
+        "new metrics_text alone": lambda: metrics_text(ws, ledger, AT),
+        "old metrics_text reusing": lambda: old_metrics.metrics_text(ws, ledger, AT, assessed=old_data.assessed),
+        "new metrics_text reusing": lambda: metrics_text(ws, ledger, AT, data=data),
+    }, args.repeats)
     print(machine())
-    print(f"windows: {total:,} over {len(data.jobs)} jobs and {data.days} days; states {counts}; "
-          f"late {sum(v.late for v in data.jobs):,}")
-    print(f"build_report: {t_build:.2f} s (survey {t_survey:.2f} s; survey and shaping {t_collect:.2f} s; "
-          f"HTML {t_render:.2f} s), best of {args.repeats}; load average {os.getloadavg()[0]:.1f}")
-    print(f"metrics_text: {t_metrics:.2f} s with its own survey, {t_metrics_reuse:.3f} s reusing the report's; "
-          f"{len(text.encode()):,} bytes")
-    print(f"page: {size:,} bytes ({size / 2**20:.2f} MiB), gzip {len(gzip.compress(page.encode())):,} bytes; "
-          f"{out}")
+    total = sum(v.total for v in data.jobs)
+    print(f"windows: {total:,} over {len(data.jobs)} jobs; states {data.totals()}; "
+          f"late {sum(v.late for v in data.jobs):,}; load average {os.getloadavg()[0]:.1f}; best of {args.repeats}")
+    for key, (took, _) in best.items():
+        print(f"{key:34s} {took:7.3f} s")
+    pages = {"old": best["old build_report"][1], "new": best["new build_report"][1]}
+    outs = {}
+    for which, page in pages.items():
+        out = write_report(root / "state" / f"report-{which}.html", page)
+        outs[which] = out
+        size = out.stat().st_size
+        print(f"{which} page: {size:,} bytes ({size / 2**20:.2f} MiB), gzip {len(gzip.compress(page.encode())):,} bytes")
     if not args.no_browser:
-        b = browser_load(out, root / "state" / "report.png", args.repeats)
-        print(f"chromium: load {b['wall']:.2f} s wall (navigate to load event), DOMContentLoaded {b['dcl']:.2f} s, "
-              f"load event end {b['load']:.2f} s; first click on a day {b['first_click'] * 1000:.0f} ms, "
-              f"next {b['next_click'] * 1000:.0f} ms; {b['nodes']:,} elements; JS heap {b['heap_mb']:.0f} MB; "
-              f"console errors {b['errors']}")
+        for which, out in outs.items():
+            b = browser_load(out, args.repeats, new=which == "new")
+            print(f"{which} page in chromium: navigation to load event {b['wall']:.2f} s; first listing "
+                  f"{b['first_click'] * 1000:.0f} ms, next {b['next_click'] * 1000:.0f} ms; {b['nodes']:,} elements; "
+                  f"JS heap {b['heap_mb']:.0f} MB; console errors {b['errors']}")
     ledger.dispose()
     if tmp is not None:
         tmp.cleanup()

@@ -1,0 +1,90 @@
+"""`weir report`: the morning page (one self-contained HTML file) and the Prometheus metrics.
+
+- `data`: what the page shows, collected from one survey of the ledger and the inputs
+- `encoding`: compact column encodings for the per-window figures
+- `svg`: the drawings
+- `page`: the page, from the files in `assets/` and the data
+- `metrics`: window counts, watermarks and run times in the Prometheus text format
+
+`report(root, at, ...)` is the command as a Python call. The modules are
+imported inside the functions, so importing this package costs nothing.
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from datetime import datetime
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from runner.ledger import Ledger
+    from runner.workspace import Workspace
+
+
+def build_report(ws: Workspace, ledger: Ledger, at: datetime) -> str:
+    """The whole page as one self-contained HTML file, for the clock `at`."""
+    from runner.report.data import collect
+    from runner.report.page import render
+
+    return render(collect(ws, ledger, at))
+
+
+def write_report(path: Path | str, text: str) -> Path:
+    """Write `text` to `path` atomically: a temporary file beside it, flushed, then renamed over it."""
+    target = Path(path)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.chmod(tmp, 0o644)
+        os.replace(tmp, target)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return target
+
+
+def report(root: Path | str, at: datetime, ledger_url: str | None = None, out: Path | str | None = None,
+           metrics: Path | str | None = None) -> dict[str, Any]:
+    """Write the page of the workspace at `root` for the clock `at` (and the metrics file when asked).
+
+    `out` defaults to `state/report.html` in the workspace; both files are
+    replaced atomically. Returns where they were written, their sizes, and the
+    window counts per state (weir's shown names) over all jobs.
+    """
+    from runner.ledger import Ledger, default_url
+    from runner.paths import REPORT
+    from runner.report.data import ORDER, collect
+    from runner.report.page import render
+    from runner.workspace import load_workspace
+
+    ws = load_workspace(root, thorough=False)
+    ledger = Ledger(ledger_url or default_url(ws.root), create=False)
+    try:
+        data = collect(ws, ledger, at)
+        page = render(data)
+        target = Path(out) if out is not None else ws.path(REPORT)
+        write_report(target, page)
+        result: dict[str, Any] = {
+            "report": str(target), "bytes": len(page.encode("utf-8")), "jobs": len(data.jobs),
+            "windows": sum(v.total for v in data.jobs),
+            "counts": {s: sum(v.counts.get(s, 0) for v in data.jobs) for s in ORDER},
+            "late": sum(v.late for v in data.jobs),
+            "overdue": sum(v.overdue for v in data.jobs),
+            "metrics": None,
+            "unplanned": dict(getattr(data.assessed, "unplanned", {})),
+        }
+        if metrics is not None:
+            from runner.report.metrics import metrics_text
+
+            text = metrics_text(ws, ledger, at, data=data)
+            write_report(Path(metrics), text)
+            result["metrics"] = str(metrics)
+        return result
+    finally:
+        ledger.dispose()
