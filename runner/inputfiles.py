@@ -1,0 +1,674 @@
+"""Input files made safe to hand to polars: where they really are, how they are encoded,
+and which CSV rows are not records of the header's shape.
+
+`prepare` looks at one file once (a small cache keeps the answer for the
+process, keyed by real path, size and modification time), before any polars
+plan reads it:
+
+* its real path must lie inside the workspace or under a folder the input
+  allows (`allow_outside:`), so a symlink in a landing folder cannot pull in
+  a file from elsewhere;
+* text is UTF-8 (a byte order mark is accepted) unless the input declares
+  another `encoding:`, which is decoded by Python's codecs into UTF-8 in
+  memory before polars reads it;
+* a CSV file's rows are checked against RFC 4180: every record has as many
+  fields as the header, quotes open a field or close one, no NUL bytes, no
+  bare carriage returns, valid text. The check runs over the bytes with
+  vectorized numpy operations (one pass, in chunks); rows that fail it are
+  *bad rows* with the file, the row number and the reason, and blank lines
+  are skipped. Rows keep their numbers: polars reads the file (or, where
+  polars could not, a copy with each bad record replaced by an empty one)
+  and the caller drops the skipped row numbers.
+
+Row numbers count records after the header from 0, blank lines included,
+exactly as polars numbers the rows it reads (a blank line is a row of nulls
+to polars).
+"""
+
+from __future__ import annotations
+
+import codecs
+import mmap
+import os
+import threading
+from collections import OrderedDict
+from dataclasses import dataclass, field
+from functools import lru_cache
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from runner.errors import WeirError
+
+if TYPE_CHECKING:
+    import numpy as np
+
+
+class InputError(WeirError):
+    """An input cannot be read as declared (missing column, bad value, bad query)."""
+
+
+class BadRows(InputError):
+    """Bad rows under `on_bad_rows: fail`, or more bad rows than the limits allow."""
+
+
+LF, CR, NUL = 10, 13, 0
+CHUNK = 1 << 20  # bytes looked at per vectorized step
+SMALL = 64 << 10  # files up to this size are read whole, and small CSV files read together
+
+# reasons a CSV record is bad, most telling first
+QUOTE_INSIDE, QUOTE_AFTER, QUOTE_OPEN, HAS_NUL, NOT_TEXT, BARE_CR, FIELDS = range(7)
+_NONE = 255
+
+
+def reason_text(code: int, fields: int, expected: int, encoding: str) -> str:
+    """The reason a bad record gives in messages and in the quarantine file."""
+    return {
+        QUOTE_INSIDE: "a quote inside an unquoted field",
+        QUOTE_AFTER: "text after the closing quote of a field",
+        QUOTE_OPEN: "a quoted field that is never closed",
+        HAS_NUL: "NUL bytes (a damaged or zero-padded file?)",
+        NOT_TEXT: f"bytes that are not valid {encoding} (declare the file's encoding: on the input)",
+        BARE_CR: "a carriage return that does not end the line",
+        FIELDS: f"{fields} field{'s' if fields != 1 else ''}, the header has {expected}",
+    }[code]
+
+
+# ---------------------------------------------------------------- where files are
+
+
+def codec(encoding: str | None) -> str:
+    """Python's canonical name of a declared encoding (`utf-8` when none is declared)."""
+    name = codecs.lookup(encoding or "utf-8").name
+    return "utf-8" if name == "utf-8-sig" else name
+
+
+def outside_roots(root: Path, allowed: list[str] | None) -> tuple[str, ...]:
+    """The real paths of the workspace and of the folders an input may also read."""
+    return (os.path.realpath(root), *(os.path.realpath(a) for a in allowed or []))
+
+
+def _within(real: str, roots: tuple[str, ...]) -> bool:
+    return any(real == r or real.startswith(r if r.endswith(os.sep) else r + os.sep) for r in roots)
+
+
+def confine(name: str, paths: list[str], roots: tuple[str, ...], label: Any,
+            folders: dict[str, str] | None = None) -> list[str]:
+    """The real paths of `paths`; InputError for the first whose real path, or its folder's,
+    leaves `roots` (workspace first).
+
+    Folders are resolved and checked once each (`folders` may carry their real paths from
+    an earlier call); a file is resolved itself only when it is a symlink.
+    """
+    folders = {} if folders is None else folders
+    reals = []
+    for path in paths:
+        folder, base = os.path.split(path)
+        real_folder = folders.get(folder)
+        if real_folder is None:
+            real_folder = os.path.realpath(folder)
+            if not _within(real_folder, roots):
+                raise _outside(name, label(path), real_folder)
+            folders[folder] = real_folder
+        if os.path.islink(path):
+            real = os.path.realpath(path)
+            if not _within(real, roots):
+                raise _outside(name, label(path), real)
+        else:
+            real = os.path.join(real_folder, base)
+        reals.append(real)
+    return reals
+
+
+def _outside(name: str, label: str, where: str) -> InputError:
+    return InputError(f"input {name}: {label} leads outside the workspace (to {where}); weir reads only files "
+                      "inside the workspace or under a folder listed in the input's allow_outside:")
+
+
+# ---------------------------------------------------------------- what a file holds
+
+
+@dataclass(frozen=True)
+class Shape:
+    """The records of a CSV file after its header, as polars numbers them."""
+
+    rows: int  # records, blank ones included
+    skip: np.ndarray  # sorted row numbers that are not data: blank and bad records
+    bad_rows: np.ndarray  # row numbers of bad records
+    bad_start: np.ndarray  # their byte ranges [start, end) in the text
+    bad_end: np.ndarray
+    bad_code: np.ndarray  # their reasons (QUOTE_INSIDE ... FIELDS)
+    bad_fields: np.ndarray  # their field counts (outside quotes)
+    copy_needed: bool  # polars cannot read some bad record (its quotes or text): read a repaired copy
+
+
+@dataclass
+class FileRead:
+    """One input file, ready for polars."""
+
+    path: str  # as listed
+    real: str  # its real path: what is read
+    label: str  # workspace-relative, for messages
+    fmt: str
+    size: int
+    encoding: str
+    header: tuple[str, ...] | None = None  # CSV column names
+    header_text: bytes = b""  # the CSV header record as found (UTF-8, no byte order mark)
+    shape: Shape | None = None  # CSV records
+    body_start: int = 0  # where the records start in `text()`
+    data: bytes | None = None  # UTF-8 text to read instead of the file (decoded, repaired), or None
+    kept: bytes | None = field(default=None, repr=False)  # the text of a small file, kept while in use
+
+    def source(self) -> str | bytes:
+        """What polars reads: the prepared bytes, or the file at its real path."""
+        return self.data if self.data is not None else self.real
+
+    def text(self) -> bytes | mmap.mmap:
+        """The file's text (UTF-8) as `shape` saw it."""
+        if self.data is not None:
+            return self.data
+        if self.kept is not None:
+            return self.kept
+        with open(self.real, "rb") as fh:
+            if self.size == 0:
+                return b""
+            return mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ)
+
+    def body(self) -> bytes:
+        """The records after the header, ending with a line feed (for reading many small files as one)."""
+        text = self.text()
+        body = bytes(text[self.body_start:])
+        return body if not body or body.endswith(b"\n") else body + b"\n"
+
+    def bad_records(self) -> list[list[str]]:
+        """The fields of each bad record as Python's csv module reads its text (for the
+        quarantine file; undecodable bytes and NUL bytes shown as U+FFFD)."""
+        import csv
+
+        assert self.shape is not None
+        text = self.text()
+        out = []
+        for start, end in zip(self.shape.bad_start.tolist(), self.shape.bad_end.tolist(), strict=True):
+            line = bytes(text[start:end]).decode("utf-8", "replace").replace("\x00", "\ufffd").rstrip("\r")
+            try:
+                out.append(next(csv.reader([line]), []))
+            except csv.Error:
+                out.append([line])
+        return out
+
+
+class _Cache:
+    """The last prepared files of this process (what a file holds is found once per run)."""
+
+    def __init__(self, entries: int = 4096, data_bytes: int = 64 << 20):
+        self.entries, self.data_bytes = entries, data_bytes
+        self.items: OrderedDict[tuple[Any, ...], FileRead] = OrderedDict()
+        self.held = 0
+        self.lock = threading.Lock()
+
+    def get(self, key: tuple[Any, ...]) -> FileRead | None:
+        with self.lock:
+            hit = self.items.get(key)
+            if hit is not None:
+                self.items.move_to_end(key)
+            return hit
+
+    def put(self, key: tuple[Any, ...], read: FileRead) -> None:
+        size = len(read.data) if read.data is not None else 0
+        if size > self.data_bytes:
+            return
+        with self.lock:
+            self.items[key] = read
+            self.held += size
+            while len(self.items) > self.entries or self.held > self.data_bytes:
+                _, old = self.items.popitem(last=False)
+                self.held -= len(old.data) if old.data is not None else 0
+
+
+_CACHE = _Cache()
+
+
+def prepare(name: str, path: str, label: str, fmt: str, encoding: str | None,
+            roots: tuple[str, ...], folders: dict[str, str] | None = None) -> FileRead:
+    """Check one input file and say how polars should read it (see the module's docstring).
+
+    Raises InputError, naming the file (and line where known), for what no row can be
+    blamed for: a file outside the workspace, an unreadable or empty file, a header that
+    cannot be read or repeats a name, text in a byte order mark of another encoding,
+    NDJSON that is not text, a Parquet file without its footer. `folders` keeps real paths
+    of folders between calls.
+    """
+    [real] = confine(name, [path], roots, lambda _: label, folders)  # again, as the file is opened
+    try:
+        st = os.stat(real)
+    except OSError as exc:
+        raise InputError(f"input {name}: cannot read {label}: {exc.strerror}") from None
+    enc = codec(encoding)
+    key = (real, st.st_size, st.st_mtime_ns, st.st_ino, fmt, enc)
+    hit = _CACHE.get(key)
+    if hit is not None:
+        return FileRead(**{**hit.__dict__, "path": path, "label": label, "kept": None})
+    read = FileRead(path, real, label, fmt, st.st_size, enc)
+    try:
+        if fmt == "parquet":
+            _parquet(name, read)
+        else:
+            _text_file(name, read)
+    except OSError as exc:
+        raise InputError(f"input {name}: cannot read {label}: {exc.strerror or exc}") from None
+    _CACHE.put(key, FileRead(**{**read.__dict__, "kept": None}))
+    return read
+
+
+def _parquet(name: str, read: FileRead) -> None:
+    import polars as pl
+
+    try:
+        pl.read_parquet_schema(read.real)
+    except Exception as exc:  # noqa: BLE001 - any reader error is the file's
+        raise InputError(f"input {name}: cannot read {read.label} as Parquet: {str(exc).splitlines()[0]}"
+                         ) from None
+
+
+def _raw(read: FileRead) -> bytes | mmap.mmap:
+    """The file's bytes: whole when small or compressed, mapped otherwise."""
+    with open(read.real, "rb") as fh:
+        if read.size <= SMALL:
+            raw: bytes | mmap.mmap = fh.read()
+        elif read.size == 0:
+            raw = b""
+        else:
+            raw = mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ)
+    if raw[:2] == b"\x1f\x8b":  # gzip, which polars would decompress itself
+        import gzip
+
+        raw = gzip.decompress(bytes(raw))
+        read.data = raw
+    return raw
+
+
+def _text_file(name: str, read: FileRead) -> None:
+    raw = _raw(read)
+    where = f"input {name}: {read.label}"
+    if read.encoding == "utf-8":
+        if raw[:2] in (b"\xff\xfe", b"\xfe\xff"):
+            raise InputError(f"{where}: starts with a UTF-16 byte order mark; declare encoding: utf-16 "
+                             "on the input")
+        text = raw
+        start = 3 if raw[:3] == b"\xef\xbb\xbf" else 0
+        if start and read.fmt == "ndjson":
+            text = read.data = bytes(raw[start:])  # polars' NDJSON reader does not skip the mark
+            start = 0
+    else:
+        # another encoding: decoded into UTF-8 in memory; bytes it cannot decode are kept as
+        # they were, so the rows holding them are found below as not valid text
+        text = read.data = bytes(raw).decode(read.encoding, "surrogateescape").encode("utf-8", "surrogateescape")
+        start = 0
+    if len(text) <= start:
+        raise InputError(f"{where}: the file is empty (a CSV file needs at least its header line)"
+                         if read.fmt == "csv" else f"{where}: the file is empty")
+    if read.fmt == "csv":
+        _csv(name, read, text, start)
+    else:
+        _ndjson(where, read, text, start)
+    if read.size <= SMALL and read.data is None:
+        read.kept = bytes(text)
+
+
+_COLLECTED = threading.local()
+_HIGH = 0x8080808080808080
+
+
+def _ascii(a: np.ndarray) -> bool:
+    """Whether no byte of `a` is above 0x7F (an OR over 8-byte words)."""
+    import numpy as np
+
+    whole = len(a) // 8 * 8
+    words = int(np.bitwise_or.reduce(a[:whole].view(np.uint64))) if whole else 0
+    tail = int(a[whole:].max()) if whole < len(a) else 0
+    return not (words & _HIGH or tail & 0x80)
+
+
+def _collect(exc: UnicodeError) -> tuple[str, int]:
+    assert isinstance(exc, UnicodeDecodeError)
+    _COLLECTED.positions.append(exc.start)
+    return "", exc.end
+
+
+codecs.register_error("weir-collect", _collect)
+
+
+def _bad_text(text: bytes | mmap.mmap, start: int) -> np.ndarray:
+    """Sorted positions of the byte sequences that are not UTF-8, from `start` on.
+
+    Only chunks holding a byte above 0x7F are decoded at all; chunks end after a
+    line feed, which no multi-byte sequence contains.
+    """
+    import numpy as np
+
+    if isinstance(text, bytes) and text.isascii():
+        return np.zeros(0, dtype=np.int64)
+    arr = np.frombuffer(text, dtype=np.uint8) if len(text) else np.zeros(0, np.uint8)
+    found: list[int] = []
+    lo = start
+    while lo < len(arr):
+        hi = min(lo + CHUNK, len(arr))
+        if hi < len(arr):
+            cut = text.rfind(b"\n", lo, hi)
+            hi = cut + 1 if cut >= lo else hi
+        if not _ascii(arr[lo:hi]):
+            _COLLECTED.positions = []
+            bytes(text[lo:hi]).decode("utf-8", "weir-collect")
+            found.extend(lo + p for p in _COLLECTED.positions)
+        lo = hi
+    return np.array(found, dtype=np.int64)
+
+
+def _line_of(text: bytes | mmap.mmap, position: int) -> int:
+    return text.count(b"\n", 0, position) + 1 if isinstance(text, bytes) else \
+        bytes(text[:position]).count(b"\n") + 1
+
+
+def _ndjson(where: str, read: FileRead, text: bytes | mmap.mmap, start: int) -> None:
+    nul = text.find(b"\x00", start)
+    if nul >= 0:
+        raise InputError(f"{where}, line {_line_of(text, nul)}: NUL bytes (a damaged or zero-padded file?)")
+    bad = _bad_text(text, start)
+    if len(bad):
+        raise InputError(f"{where}, line {_line_of(text, int(bad[0]))}: bytes that are not valid {read.encoding} "
+                         "(declare the file's encoding: on the input)")
+    end = len(text)
+    while end > start and text[end - 1:end] in (b"\n", b"\r", b" ", b"\t"):
+        end -= 1
+    if end > start and text[end - 1:end] != b"}":
+        raise InputError(f"{where}, line {_line_of(text, end - 1)}: the last line is cut off (it does not "
+                         "end with the closing brace of an object)")
+
+
+def _header(where: str, text: bytes | mmap.mmap, start: int, quote: int) -> int:
+    """Where the header record ends (its line feed, or the end of the text)."""
+    end = text.find(b"\n", start)
+    while end >= 0 and bytes(text[start:end]).count(bytes([quote])) % 2:
+        end = text.find(b"\n", end + 1)  # a quoted name holds a line feed
+    if end < 0:
+        if bytes(text[start:]).count(bytes([quote])) % 2:
+            raise InputError(f"{where}, header: a quoted name that is never closed")
+        return len(text)
+    return end
+
+
+def _csv(name: str, read: FileRead, text: bytes | mmap.mmap, start: int, sep: str = ",",
+         quote: str = '"') -> None:
+    import csv
+
+    where = f"input {name}: {read.label}"
+    end = _header(where, text, start, ord(quote))
+    raw_header = bytes(text[start:end])
+    if b"\x00" in raw_header:
+        raise InputError(f"{where}, header: NUL bytes (a damaged or zero-padded file?)")
+    try:
+        line = raw_header.decode("utf-8").rstrip("\r")
+    except UnicodeDecodeError:
+        raise InputError(f"{where}, header: bytes that are not valid {read.encoding} (declare the file's "
+                         "encoding: on the input)") from None
+    try:
+        names = next(csv.reader([line], strict=True, delimiter=sep, quotechar=quote), [])
+    except csv.Error as exc:
+        raise InputError(f"{where}, header: {exc}") from None
+    if not line.strip():
+        raise InputError(f"{where}: the first line is empty; a CSV file starts with its header line")
+    seen: dict[str, int] = {}
+    for i, column in enumerate(names, 1):
+        if column in seen:
+            raise InputError(f"{where}, header: column name {column!r} appears twice (columns {seen[column]} "
+                             f"and {i}); rows cannot be read by name")
+        seen[column] = i
+    read.header = tuple(names)
+    read.header_text = raw_header.rstrip(b"\r") + b"\n"
+    read.body_start = min(end + 1, len(text))
+    read.shape = shape(text, read.body_start, len(names), ord(sep), ord(quote))
+    if read.shape.copy_needed:
+        read.data = repaired(text, read.shape, len(names), sep)
+
+
+def repaired(text: bytes | mmap.mmap, found: Shape, fields: int, sep: str = ",") -> bytes:
+    """`text` with every bad record replaced by an empty one (fields-1 separators): polars
+    reads the same number of rows, in the same places, and can read every one."""
+    filler = sep.encode() * (fields - 1) + b"\n"
+    parts = []
+    at = 0
+    for start, end in zip(found.bad_start.tolist(), found.bad_end.tolist(), strict=True):
+        parts.append(text[at:start])
+        parts.append(filler)
+        at = end + 1  # past the record's line feed
+    parts.append(text[at:])
+    out = b"".join(bytes(p) for p in parts)
+    return out
+
+
+# ---------------------------------------------------------------- CSV record shapes
+
+
+def shape(text: bytes | mmap.mmap, begin: int, fields: int, sep: int = 44, quote: int = 34) -> Shape:
+    """The records of CSV `text` from byte `begin` on, checked against `fields` fields each."""
+    if isinstance(text, bytes) and len(text) <= SMALL and fields > 1:
+        rows = _plain_rows(text[begin:], fields, sep, quote)
+        if rows is not None:
+            empty, codes = _empty()
+            return Shape(rows, empty, empty, empty, empty, codes, empty, False)
+    return _Scan(text, begin, fields, sep, quote).run()
+
+
+@lru_cache(maxsize=1)
+def _empty() -> tuple[np.ndarray, np.ndarray]:
+    """Shared empty arrays (read-only) for files without a bad row."""
+    import numpy as np
+
+    out = np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.uint8)
+    for a in out:
+        a.flags.writeable = False
+    return out
+
+
+def _plain_rows(body: bytes, fields: int, sep: int, quote: int) -> int | None:
+    """How many records a small, plain body holds when every one is plainly right: ASCII, no
+    quotes, carriage returns or NUL bytes, each line with its separators (so none blank).
+    None when any of that does not hold: `_Scan` then looks properly. Checking each file
+    with numpy costs more than reading it when there are thousands of tiny files."""
+    if not body.isascii() or bytes([quote]) in body or b"\r" in body or b"\x00" in body:
+        return None
+    lines = body.split(b"\n")
+    if lines[-1] == b"":
+        lines.pop()
+    separator = bytes([sep])
+    if all(line.count(separator) == fields - 1 for line in lines):
+        return len(lines)
+    return None
+
+
+class _Scan:
+    """One pass over the records, a chunk of bytes at a time.
+
+    Per chunk, the separators, line feeds, quotes and carriage returns are
+    found with numpy; quotes toggle "inside a quoted field" (their running
+    parity), and every quote is checked to open a field or to close one (or to
+    be doubled inside one), so that the parity is the RFC 4180 reading. Line
+    feeds outside quotes end records; separators outside quotes count fields.
+    A quote that breaks the rules makes its record bad up to the end of that
+    physical line, and reading resumes after it; so does a quote never closed.
+    """
+
+    def __init__(self, text: bytes | mmap.mmap, begin: int, fields: int, sep: int, quote: int):
+        import numpy as np
+
+        self.np = np
+        self.text = text
+        self.arr = np.frombuffer(text, dtype=np.uint8) if len(text) else np.zeros(0, np.uint8)
+        self.size = len(self.arr)
+        self.fields, self.sep, self.quote = fields, sep, quote
+        self.has_quote = text.find(bytes([quote]), begin) >= 0
+        self.has_cr = text.find(b"\r", begin) >= 0
+        events = [_bad_text(text, begin)]
+        codes = [np.full(len(events[0]), NOT_TEXT, np.uint8)]
+        if text.find(b"\x00", begin) >= 0:
+            nul = np.flatnonzero(self.arr[begin:] == NUL) + begin
+            events.append(nul)
+            codes.append(np.full(len(nul), HAS_NUL, np.uint8))
+        pos = np.concatenate(events)
+        order = np.argsort(pos, kind="stable")
+        self.events, self.event_codes = pos[order], np.concatenate(codes)[order]
+        self.copy = bool(len(events[0]))
+        self.row, self.start, self.seps = 0, begin, 0
+        self.inq, self.opened, self.closed = False, -1, -2
+        self.blank: list[np.ndarray] = []
+        self.bad: list[tuple[np.ndarray, ...]] = []
+
+    def run(self) -> Shape:
+        np = self.np
+        lo = self.start
+        while True:
+            while lo < self.size:
+                lo = self._chunk(lo, min(lo + CHUNK, self.size))
+            if not self.inq:
+                break
+            # a quote never closed: its record is bad to the end of the quote's line; read on from there
+            lo = self._bad_to_line_end(self.opened, QUOTE_OPEN)
+        if self.start < self.size:
+            self._records(np.array([self.size]), np.array([self.seps]))
+        bad = [np.concatenate(parts) if parts else np.zeros(0, np.int64) for parts in zip(*self.bad, strict=True)] \
+            if self.bad else [np.zeros(0, np.int64)] * 5
+        rows, starts, ends, codes, counts = bad
+        blank = np.concatenate(self.blank) if self.blank else np.zeros(0, np.int64)
+        codes = codes.astype(np.uint8)
+        copy = self.copy or bool((codes <= QUOTE_OPEN).any())
+        return Shape(self.row, np.union1d(blank, rows).astype(np.int64), rows.astype(np.int64),
+                     starts.astype(np.int64), ends.astype(np.int64), codes, counts.astype(np.int64), copy)
+
+    def _bad_to_line_end(self, at: int, code: int) -> int:
+        """Make the current record bad from its start to the line feed after byte `at`; return where
+        the next record starts."""
+        np = self.np
+        end = self.text.find(b"\n", at)
+        end = self.size if end < 0 else end
+        self.bad.append((np.array([self.row]), np.array([self.start]), np.array([end]), np.array([code]),
+                         np.array([self.seps + 1])))
+        self.row += 1
+        self.start, self.seps = end + 1, 0
+        self.inq, self.opened, self.closed = False, -1, -2
+        return end + 1
+
+    def _chunk(self, lo: int, hi: int) -> int:
+        np = self.np
+        a = self.arr[lo:hi]
+        mask = (a == self.sep) | (a == LF)
+        if self.has_quote:
+            mask |= a == self.quote
+        if self.has_cr:
+            mask |= a == CR
+        at = np.flatnonzero(mask)
+        kinds = a[at]
+        at += lo
+        if self.has_quote:
+            quoted = kinds == self.quote
+            if self.inq or quoted.any():
+                inside = (np.cumsum(quoted) - quoted + self.inq) & 1  # 1: inside a quoted field
+                qi = np.flatnonzero(quoted)
+                wrong = self._wrong_quotes(at, inside, qi)
+                if wrong is not None:
+                    j, code = wrong
+                    q = int(at[qi[j]])
+                    if q > lo:
+                        self._chunk(lo, q)  # the rows before the quote, with the state at it
+                    return self._bad_to_line_end(q, code)
+                if len(qi):
+                    last = int(qi[-1])
+                    after = int(inside[last]) ^ 1  # inside a quoted field after the last quote
+                    if after:
+                        self.opened = int(at[last])
+                    else:
+                        self.closed = int(at[last])
+                    self.inq = bool(after)
+                structural = ~quoted & (inside == 0)
+                at, kinds = at[structural], kinds[structural]
+        if self.has_cr:
+            cr = kinds == CR
+            if cr.any():
+                following = self.arr[np.minimum(at[cr] + 1, self.size - 1)]
+                bare = at[cr][(following != LF) & (at[cr] + 1 < self.size)]
+                if len(bare):
+                    self._add_events(bare, BARE_CR)
+                at, kinds = at[~cr], kinds[~cr]
+        lf = np.flatnonzero(kinds == LF)
+        if not len(lf):
+            self.seps += len(kinds)
+            return hi
+        seps = np.diff(lf, prepend=-1) - 1
+        seps[0] += self.seps
+        self.seps = len(kinds) - int(lf[-1]) - 1
+        ends = at[lf]
+        if (self.fields > 1 and (seps == self.fields - 1).all() and not self._events_in(self.start, int(ends[-1]))
+                and not self.has_cr):
+            # the common case: every record has its fields (so none is blank) and nothing else is wrong
+            self.row += len(ends)
+            self.start = int(ends[-1]) + 1
+            return hi
+        self._records(ends, seps)
+        return hi
+
+    def _events_in(self, lo: int, hi: int) -> bool:
+        if not len(self.events):
+            return False
+        first = int(self.np.searchsorted(self.events, lo, side="left"))
+        return first < len(self.events) and int(self.events[first]) < hi
+
+    def _wrong_quotes(self, at: np.ndarray, inside: np.ndarray, qi: np.ndarray) -> tuple[int, int] | None:
+        """The first quote (index into `qi`) that neither opens a field, closes one nor is doubled
+        inside one, with its reason; None when every quote is right."""
+        np = self.np
+        if not len(qi):
+            return None
+        gq = at[qi]
+        opening = inside[qi] == 0
+        before = self.arr[np.maximum(gq - 1, 0)]
+        # a quote right after a closing one is the second of a doubled quote
+        prev_closing = np.zeros(len(qi), dtype=bool)
+        prev_closing[1:] = (~opening[:-1]) & (gq[:-1] == gq[1:] - 1)
+        prev_closing[0] = self.closed == int(gq[0]) - 1
+        opens_ok = (before == self.sep) | (before == LF) | prev_closing | (gq == self.start)
+        last = gq + 1 >= self.size
+        after = self.arr[np.minimum(gq + 1, self.size - 1)]
+        closes_ok = last | (after == self.sep) | (after == LF) | (after == CR) | (after == self.quote)
+        bad = np.flatnonzero(np.where(opening, ~opens_ok, ~closes_ok))
+        if not len(bad):
+            return None
+        j = int(bad[0])
+        return j, QUOTE_INSIDE if opening[j] else QUOTE_AFTER
+
+    def _add_events(self, positions: np.ndarray, code: int) -> None:
+        np = self.np
+        pos = np.concatenate([self.events, positions])
+        codes = np.concatenate([self.event_codes, np.full(len(positions), code, np.uint8)])
+        order = np.argsort(pos, kind="stable")
+        self.events, self.event_codes = pos[order], codes[order]
+
+    def _records(self, ends: np.ndarray, seps: np.ndarray) -> None:
+        """Close records ending (before their line feed) at `ends`, with `seps` separators each."""
+        np = self.np
+        starts = np.empty_like(ends)
+        starts[0] = self.start
+        starts[1:] = ends[:-1] + 1
+        rows = np.arange(self.row, self.row + len(ends), dtype=np.int64)
+        length = ends - starts
+        blank = (length == 0) | ((length == 1) & (self.arr[np.minimum(starts, self.size - 1)] == CR))
+        code = np.where(~blank & (seps + 1 != self.fields), FIELDS, _NONE).astype(np.uint8)
+        if len(self.events):
+            lo, hi = np.searchsorted(self.events, [int(starts[0]), int(ends[-1])], side="left")
+            if hi > lo:
+                where = np.searchsorted(ends, self.events[lo:hi], side="left")
+                np.minimum.at(code, where, self.event_codes[lo:hi])
+        bad = code != _NONE
+        if blank.any():
+            self.blank.append(rows[blank])
+        if bad.any():
+            self.bad.append((rows[bad], starts[bad], ends[bad], code[bad], seps[bad] + 1))
+        self.row += len(ends)
+        self.start = int(ends[-1]) + 1
