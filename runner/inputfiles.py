@@ -54,6 +54,7 @@ class BadRows(InputError):
 LF, CR, NUL = 10, 13, 0
 CHUNK = 1 << 20  # bytes looked at per vectorized step
 SMALL = 64 << 10  # files up to this size are read whole, and small CSV files read together
+EAGER = 64 << 20  # NDJSON files up to this size are read at once, so that a syntax error can be located
 
 # reasons a CSV record is bad, most telling first
 QUOTE_INSIDE, QUOTE_AFTER, QUOTE_OPEN, HAS_NUL, NOT_TEXT, BARE_CR, FIELDS = range(7)
@@ -156,6 +157,7 @@ class FileRead:
     shape: Shape | None = None  # CSV records
     body_start: int = 0  # where the records start in `text()`
     data: bytes | None = None  # UTF-8 text to read instead of the file (decoded, repaired), or None
+    bad_text: list[bytes] = field(default_factory=list)  # each bad record's bytes (at most 64 KiB of each)
     kept: bytes | None = field(default=None, repr=False)  # the text of a small file, kept while in use
 
     def source(self) -> str | bytes:
@@ -169,8 +171,8 @@ class FileRead:
         if self.kept is not None:
             return self.kept
         with open(self.real, "rb") as fh:
-            if self.size == 0:
-                return b""
+            if self.size <= SMALL:
+                return fh.read()
             return mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ)
 
     def body(self) -> bytes:
@@ -184,11 +186,9 @@ class FileRead:
         quarantine file; undecodable bytes and NUL bytes shown as U+FFFD)."""
         import csv
 
-        assert self.shape is not None
-        text = self.text()
         out = []
-        for start, end in zip(self.shape.bad_start.tolist(), self.shape.bad_end.tolist(), strict=True):
-            line = bytes(text[start:end]).decode("utf-8", "replace").replace("\x00", "\ufffd").rstrip("\r")
+        for raw in self.bad_text:
+            line = raw.decode("utf-8", "replace").replace("\x00", "\ufffd").rstrip("\r")
             try:
                 out.append(next(csv.reader([line]), []))
             except csv.Error:
@@ -213,7 +213,7 @@ class _Cache:
             return hit
 
     def put(self, key: tuple[Any, ...], read: FileRead) -> None:
-        size = len(read.data) if read.data is not None else 0
+        size = _held(read)
         if size > self.data_bytes:
             return
         with self.lock:
@@ -221,7 +221,11 @@ class _Cache:
             self.held += size
             while len(self.items) > self.entries or self.held > self.data_bytes:
                 _, old = self.items.popitem(last=False)
-                self.held -= len(old.data) if old.data is not None else 0
+                self.held -= _held(old)
+
+
+def _held(read: FileRead) -> int:
+    return (len(read.data) if read.data is not None else 0) + sum(len(b) for b in read.bad_text)
 
 
 _CACHE = _Cache()
@@ -354,7 +358,13 @@ def _bad_text(text: bytes | mmap.mmap, start: int) -> np.ndarray:
         hi = min(lo + CHUNK, len(arr))
         if hi < len(arr):
             cut = text.rfind(b"\n", lo, hi)
-            hi = cut + 1 if cut >= lo else hi
+            if cut >= lo:
+                hi = cut + 1
+            else:  # no line feed: end the chunk before a sequence's first byte
+                while hi > lo and arr[hi] & 0xC0 == 0x80:
+                    hi -= 1
+                while hi == lo or (hi < len(arr) and arr[hi] & 0xC0 == 0x80):
+                    hi += 1
         if not _ascii(arr[lo:hi]):
             _COLLECTED.positions = []
             bytes(text[lo:hi]).decode("utf-8", "weir-collect")
@@ -382,6 +392,23 @@ def _ndjson(where: str, read: FileRead, text: bytes | mmap.mmap, start: int) -> 
     if end > start and text[end - 1:end] != b"}":
         raise InputError(f"{where}, line {_line_of(text, end - 1)}: the last line is cut off (it does not "
                          "end with the closing brace of an object)")
+
+
+def json_problem(text: bytes) -> tuple[int, str] | None:
+    """The first line of NDJSON `text` that Python's json module cannot read as an object, with
+    its message (None when every line reads)."""
+    import json
+
+    for number, line in enumerate(text.split(b"\n"), start=1):
+        if not line.strip():
+            continue
+        try:
+            value = json.loads(line)
+        except ValueError as exc:
+            return number, f"not JSON ({exc})"
+        if not isinstance(value, dict):
+            return number, f"a JSON {type(value).__name__}, not an object"
+    return None
 
 
 def _header(where: str, text: bytes | mmap.mmap, start: int, quote: int) -> int:
@@ -426,6 +453,8 @@ def _csv(name: str, read: FileRead, text: bytes | mmap.mmap, start: int, sep: st
     read.header_text = raw_header.rstrip(b"\r") + b"\n"
     read.body_start = min(end + 1, len(text))
     read.shape = shape(text, read.body_start, len(names), ord(sep), ord(quote))
+    read.bad_text = [bytes(text[start:min(end, start + (64 << 10))]) for start, end in
+                     zip(read.shape.bad_start.tolist(), read.shape.bad_end.tolist(), strict=True)]
     if read.shape.copy_needed:
         read.data = repaired(text, read.shape, len(names), sep)
 
@@ -494,7 +523,9 @@ class _Scan:
     be doubled inside one), so that the parity is the RFC 4180 reading. Line
     feeds outside quotes end records; separators outside quotes count fields.
     A quote that breaks the rules makes its record bad up to the end of that
-    physical line, and reading resumes after it; so does a quote never closed.
+    physical line, and reading resumes after it (as a reader that takes such a
+    quote for a plain character would); a quote never closed makes the rest of
+    the text one bad record (its field never ends).
     """
 
     def __init__(self, text: bytes | mmap.mmap, begin: int, fields: int, sep: int, quote: int):
@@ -530,8 +561,8 @@ class _Scan:
                 lo = self._chunk(lo, min(lo + CHUNK, self.size))
             if not self.inq:
                 break
-            # a quote never closed: its record is bad to the end of the quote's line; read on from there
-            lo = self._bad_to_line_end(self.opened, QUOTE_OPEN)
+            # a quote never closed: its field, and so its record, runs to the end of the text
+            lo = self._bad_to_line_end(self.size, QUOTE_OPEN)
         if self.start < self.size:
             self._records(np.array([self.size]), np.array([self.seps]))
         bad = [np.concatenate(parts) if parts else np.zeros(0, np.int64) for parts in zip(*self.bad, strict=True)] \
@@ -547,7 +578,7 @@ class _Scan:
         """Make the current record bad from its start to the line feed after byte `at`; return where
         the next record starts."""
         np = self.np
-        end = self.text.find(b"\n", at)
+        end = self.text.find(b"\n", at) if at < self.size else -1
         end = self.size if end < 0 else end
         self.bad.append((np.array([self.row]), np.array([self.start]), np.array([end]), np.array([code]),
                          np.array([self.seps + 1])))

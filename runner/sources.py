@@ -420,12 +420,42 @@ def _skip(lf: pl.LazyFrame, read: FileRead) -> pl.LazyFrame:
     return lf.filter(~pl.col(ROW).is_in(pl.Series(read.shape.skip, dtype=pl.Int64).implode()))
 
 
-def _one_file(number: int, read: FileRead, text_columns: list[str], numbered: bool) -> pl.LazyFrame:
-    """One file read lazily; with `numbered`, its rows carry FILE and ROW."""
+def _ndjson(name: str, read: FileRead, text_columns: list[str], row_index: bool) -> pl.LazyFrame:
+    """An NDJSON file of at most `inputfiles.EAGER` bytes, read at once: a line polars cannot read
+    fails the window naming the file and, as Python's json module finds it, the line."""
     import polars as pl
 
+    try:
+        return pl.read_ndjson(read.source(), schema_overrides={c: pl.String for c in text_columns} or None,
+                              row_index_name=ROW if row_index else None, infer_schema_length=None).lazy()
+    except pl.exceptions.PolarsError as exc:
+        raise _unreadable(name, read, exc) from None
+
+
+def _unreadable(name: str, read: FileRead, exc: Exception) -> InputError:
+    """The error for a file polars cannot read, naming it (and, for NDJSON, the line Python's json
+    module cannot read)."""
+    from runner.inputfiles import EAGER, json_problem
+
+    if read.fmt == "ndjson" and read.size <= EAGER:
+        found = json_problem(bytes(read.text()))
+        if found is not None:
+            return InputError(f"input {name}: {read.label}, line {found[0]}: {found[1]}")
+    return InputError(f"input {name}: cannot read {read.label}: {str(exc).splitlines()[0]}")
+
+
+def _one_file(name: str, number: int, read: FileRead, text_columns: list[str], numbered: bool) -> pl.LazyFrame:
+    """One file read lazily (an NDJSON file of moderate size at once); with `numbered`, its rows
+    carry FILE and ROW."""
+    import polars as pl
+
+    from runner.inputfiles import EAGER
+
     skips = read.shape is not None and len(read.shape.skip) > 0
-    lf = _skip(_scan(read.source(), read.fmt, text_columns, numbered or skips), read)
+    if read.fmt == "ndjson" and read.size <= EAGER:
+        lf = _ndjson(name, read, text_columns, numbered)
+    else:
+        lf = _skip(_scan(read.source(), read.fmt, text_columns, numbered or skips), read)
     if numbered:
         return lf.with_columns(pl.lit(number, dtype=pl.UInt32).alias(FILE))
     return lf.drop(ROW) if skips else lf
@@ -476,7 +506,7 @@ def file_frames(name: str, reads: list[FileRead], text_columns: dict[int, list[s
         if read.fmt == "csv" and read.size <= SMALL and read.header is not None:
             together.setdefault((read.header, tuple(text_columns.get(i, []))), []).append(i)
         else:
-            frames.append(_one_file(i, read, text_columns.get(i, []), numbered))
+            frames.append(_one_file(name, i, read, text_columns.get(i, []), numbered))
     for (_, texts), members in together.items():
         frames.append(_small_files(members, [reads[i] for i in members], list(texts), numbered))
     return frames
@@ -567,7 +597,7 @@ def file_frame(root: Path, name: str, source: FileInput, files: FileSet, window:
             try:
                 header = _scan(read.source(), read.fmt, [], row_index=False).collect_schema().names()
             except pl.exceptions.PolarsError as exc:
-                raise InputError(f"input {name}: cannot read {read.label}: {str(exc).splitlines()[0]}") from None
+                raise _unreadable(name, read, exc) from None
         missing = [c for c in wanted if c not in header]
         if missing:
             raise InputError(f"input {name}: {read.label} has no column(s) {', '.join(missing)} "
@@ -585,7 +615,8 @@ def file_frame(root: Path, name: str, source: FileInput, files: FileSet, window:
     try:
         raw = lf.collect_schema()
     except pl.exceptions.PolarsError as exc:
-        raise InputError(f"input {name}: cannot read {reads[0].label}: {str(exc).splitlines()[0]}") from None
+        raise InputError(f"input {name}: cannot read its files ({reads[0].label} ...): "
+                         f"{str(exc).splitlines()[0]}") from None
     samples = _samples(lf, columns, raw)
     labels = [read.label for read in reads]
     repeats = None

@@ -373,6 +373,18 @@ def test_a_cut_off_ndjson_file_names_file_and_line(tmp_path: Path):
                                "not end with the closing brace of an object)")
 
 
+def test_an_ndjson_line_that_is_not_json_names_file_and_line(tmp_path: Path):
+    """Hardening item 17: polars' NDJSON errors (TapeError and the like) named no file and no line."""
+    data = b'{"dock": "dock_01", "delta": 1}\n{"dock": "dock_02", "delta": }\n{"dock": "dock_03", "delta": 1}\n'
+    text = job(files="state/landing/rides/{start:%Y-%m-%d}/*.ndjson", sql="SELECT COUNT(*) AS n FROM rides")
+    root = workspace(tmp_path, text, {"docks.ndjson": data})
+    window = run_day(root)
+    assert window["status"] == "failed"
+    with pytest.raises(json.JSONDecodeError) as caught:
+        json.loads(data.splitlines()[1])  # the json module's own message for the line
+    assert window["error"] == f"input rides: {LANDING}/docks.ndjson, line 2: not JSON ({caught.value})"
+
+
 def test_ndjson_that_is_not_utf8_names_file_and_line_and_reads_with_its_encoding(tmp_path: Path):
     """Hardening item 17: NDJSON in Latin-1 failed without the file name; `encoding:` reads it."""
     data = '{"dock": "doca_praça", "delta": 1}\n{"dock": "doca_sé", "delta": 1}\n'.encode("latin-1")
