@@ -360,29 +360,31 @@ def test_a_truncated_parquet_file_is_named(tmp_path: Path):
     assert window["error"].startswith(f"input rides: cannot read {LANDING}/b.parquet as Parquet: ")
 
 
+def failed_ndjson_day(tmp_path: Path, data: bytes) -> str:
+    """The error of a day whose only input file is NDJSON `data` (the window must fail)."""
+    text = job(files="state/landing/rides/{start:%Y-%m-%d}/*.ndjson", sql="SELECT COUNT(*) AS n FROM rides")
+    window = run_day(workspace(tmp_path, text, {"docks.ndjson": data}))
+    assert window["status"] == "failed"
+    return window["error"]
+
+
 def test_a_cut_off_ndjson_file_names_file_and_line(tmp_path: Path):
     """Hardening item 17: NDJSON read errors name the file and the line."""
     data = b'{"dock": "dock_01", "delta": 1}\n{"dock": "dock_02", "delta": -1}\n{"dock": "dock_0'
-    text = job(files="state/landing/rides/{start:%Y-%m-%d}/*.ndjson", sql="SELECT COUNT(*) AS n FROM rides")
-    root = workspace(tmp_path, text, {"docks.ndjson": data})
-    window = run_day(root)
-    assert window["status"] == "failed"
+    error = failed_ndjson_day(tmp_path, data)
     with pytest.raises(json.JSONDecodeError):
         json.loads(data.splitlines()[2])  # the json module agrees the third line is not whole
-    assert window["error"] == (f"input rides: {LANDING}/docks.ndjson, line 3: the last line is cut off (it does "
+    assert error == (f"input rides: {LANDING}/docks.ndjson, line 3: the last line is cut off (it does "
                                "not end with the closing brace of an object)")
 
 
 def test_an_ndjson_line_that_is_not_json_names_file_and_line(tmp_path: Path):
     """Hardening item 17: polars' NDJSON errors (TapeError and the like) named no file and no line."""
     data = b'{"dock": "dock_01", "delta": 1}\n{"dock": "dock_02", "delta": }\n{"dock": "dock_03", "delta": 1}\n'
-    text = job(files="state/landing/rides/{start:%Y-%m-%d}/*.ndjson", sql="SELECT COUNT(*) AS n FROM rides")
-    root = workspace(tmp_path, text, {"docks.ndjson": data})
-    window = run_day(root)
-    assert window["status"] == "failed"
+    error = failed_ndjson_day(tmp_path, data)
     with pytest.raises(json.JSONDecodeError) as caught:
         json.loads(data.splitlines()[1])  # the json module's own message for the line
-    assert window["error"] == f"input rides: {LANDING}/docks.ndjson, line 2: not JSON ({caught.value})"
+    assert error == f"input rides: {LANDING}/docks.ndjson, line 2: not JSON ({caught.value})"
 
 
 def test_ndjson_that_is_not_utf8_names_file_and_line_and_reads_with_its_encoding(tmp_path: Path):
