@@ -52,7 +52,7 @@ class BadRows(InputError):
 
 
 LF, CR, NUL = 10, 13, 0
-CHUNK = 1 << 20  # bytes looked at per vectorized step
+CHUNK = 1 << 19  # bytes looked at per vectorized step (its temporary arrays stay below glibc's mmap threshold)
 SMALL = 64 << 10  # files up to this size are read whole, and small CSV files read together
 EAGER = 64 << 20  # NDJSON files up to this size are read at once, so that a syntax error can be located
 
@@ -341,30 +341,48 @@ def _collect(exc: UnicodeError) -> tuple[str, int]:
 codecs.register_error("weir-collect", _collect)
 
 
-def _bad_text(text: bytes | mmap.mmap, start: int) -> np.ndarray:
-    """Sorted positions of the byte sequences that are not UTF-8, from `start` on.
+def _span_end(text: bytes | mmap.mmap, arr: np.ndarray, lo: int, stop: int) -> int:
+    """Where a chunk of text from `lo` should end, at most `CHUNK` on and never after `stop`:
+    after a line feed when there is one, else before the first byte of a UTF-8 sequence."""
+    hi = min(lo + CHUNK, stop)
+    if hi >= stop:
+        return stop
+    cut = text.rfind(b"\n", lo, hi)
+    if cut >= lo:
+        return cut + 1
+    while hi > lo and arr[hi] & 0xC0 == 0x80:
+        hi -= 1
+    while hi == lo or (hi < stop and arr[hi] & 0xC0 == 0x80):
+        hi += 1
+    return hi
 
-    Only chunks holding a byte above 0x7F are decoded at all; chunks end after a
-    line feed, which no multi-byte sequence contains.
+
+def let_go(text: bytes | mmap.mmap, start: int, upto: int) -> int:
+    """Drop the mapped pages of `text[start:upto]` from this process (they stay in the page
+    cache, so reading them again costs a fault, not a read): looking at a large file once must
+    not hold all of it in resident memory. Returns the page boundary it got to."""
+    end = upto - upto % mmap.PAGESIZE
+    start -= start % mmap.PAGESIZE
+    if isinstance(text, mmap.mmap) and end > start:
+        text.madvise(mmap.MADV_DONTNEED, start, end - start)
+    return max(start, end)
+
+
+def _bad_text(text: bytes | mmap.mmap, start: int, stop: int | None = None) -> np.ndarray:
+    """Sorted positions of the byte sequences that are not UTF-8 in `text[start:stop]`.
+
+    Only chunks holding a byte above 0x7F are decoded at all.
     """
     import numpy as np
 
     if isinstance(text, bytes) and text.isascii():
         return np.zeros(0, dtype=np.int64)
     arr = np.frombuffer(text, dtype=np.uint8) if len(text) else np.zeros(0, np.uint8)
+    stop = len(arr) if stop is None else stop
     found: list[int] = []
     lo = start
-    while lo < len(arr):
-        hi = min(lo + CHUNK, len(arr))
-        if hi < len(arr):
-            cut = text.rfind(b"\n", lo, hi)
-            if cut >= lo:
-                hi = cut + 1
-            else:  # no line feed: end the chunk before a sequence's first byte
-                while hi > lo and arr[hi] & 0xC0 == 0x80:
-                    hi -= 1
-                while hi == lo or (hi < len(arr) and arr[hi] & 0xC0 == 0x80):
-                    hi += 1
+    while lo < stop:
+        hi = _span_end(text, arr, lo, stop)
         if not _ascii(arr[lo:hi]):
             _COLLECTED.positions = []
             bytes(text[lo:hi]).decode("utf-8", "weir-collect")
@@ -379,13 +397,21 @@ def _line_of(text: bytes | mmap.mmap, position: int) -> int:
 
 
 def _ndjson(where: str, read: FileRead, text: bytes | mmap.mmap, start: int) -> None:
-    nul = text.find(b"\x00", start)
-    if nul >= 0:
-        raise InputError(f"{where}, line {_line_of(text, nul)}: NUL bytes (a damaged or zero-padded file?)")
-    bad = _bad_text(text, start)
-    if len(bad):
-        raise InputError(f"{where}, line {_line_of(text, int(bad[0]))}: bytes that are not valid {read.encoding} "
-                         "(declare the file's encoding: on the input)")
+    import numpy as np
+
+    arr = np.frombuffer(text, dtype=np.uint8)
+    lo = released = start
+    while lo < len(text):
+        hi = _span_end(text, arr, lo, len(text))
+        nul = text.find(b"\x00", lo, hi)
+        if nul >= 0:
+            raise InputError(f"{where}, line {_line_of(text, nul)}: NUL bytes (a damaged or zero-padded file?)")
+        bad = _bad_text(text, lo, hi)
+        if len(bad):
+            raise InputError(f"{where}, line {_line_of(text, int(bad[0]))}: bytes that are not valid "
+                             f"{read.encoding} (declare the file's encoding: on the input)")
+        released = let_go(text, released, lo)
+        lo = hi
     end = len(text)
     while end > start and text[end - 1:end] in (b"\n", b"\r", b" ", b"\t"):
         end -= 1
@@ -536,22 +562,18 @@ class _Scan:
         self.arr = np.frombuffer(text, dtype=np.uint8) if len(text) else np.zeros(0, np.uint8)
         self.size = len(self.arr)
         self.fields, self.sep, self.quote = fields, sep, quote
-        self.has_quote = text.find(bytes([quote]), begin) >= 0
-        self.has_cr = text.find(b"\r", begin) >= 0
-        events = [_bad_text(text, begin)]
-        codes = [np.full(len(events[0]), NOT_TEXT, np.uint8)]
-        if text.find(b"\x00", begin) >= 0:
-            nul = np.flatnonzero(self.arr[begin:] == NUL) + begin
-            events.append(nul)
-            codes.append(np.full(len(nul), HAS_NUL, np.uint8))
-        pos = np.concatenate(events)
-        order = np.argsort(pos, kind="stable")
-        self.events, self.event_codes = pos[order], np.concatenate(codes)[order]
-        self.copy = bool(len(events[0]))
+        self.quote_byte = bytes([quote])
+        # bytes that make a record bad wherever they are (NUL, not UTF-8), found chunk by chunk
+        self.events, self.event_codes = np.zeros(0, np.int64), np.zeros(0, np.uint8)
+        self.checked = begin  # events are known before this byte
+        self.copy = False
         self.row, self.start, self.seps = 0, begin, 0
         self.inq, self.opened, self.closed = False, -1, -2
         self.blank: list[np.ndarray] = []
         self.bad: list[tuple[np.ndarray, ...]] = []
+        # masks reused chunk after chunk: allocating them anew costs a page fault per page
+        self.masks = np.zeros((3, CHUNK + 64), dtype=bool)
+        self.released = begin  # mapped pages before this are let go (`let_go`)
 
     def run(self) -> Shape:
         np = self.np
@@ -559,11 +581,13 @@ class _Scan:
         while True:
             while lo < self.size:
                 lo = self._chunk(lo, min(lo + CHUNK, self.size))
+                self._release(lo - 2 * CHUNK)
             if not self.inq:
                 break
             # a quote never closed: its field, and so its record, runs to the end of the text
             lo = self._bad_to_line_end(self.size, QUOTE_OPEN)
         if self.start < self.size:
+            self._find_events(self.size)
             self._records(np.array([self.size]), np.array([self.seps]))
         bad = [np.concatenate(parts) if parts else np.zeros(0, np.int64) for parts in zip(*self.bad, strict=True)] \
             if self.bad else [np.zeros(0, np.int64)] * 5
@@ -573,6 +597,10 @@ class _Scan:
         copy = self.copy or bool((codes <= QUOTE_OPEN).any())
         return Shape(self.row, np.union1d(blank, rows).astype(np.int64), rows.astype(np.int64),
                      starts.astype(np.int64), ends.astype(np.int64), codes, counts.astype(np.int64), copy)
+
+    def _release(self, upto: int) -> None:
+        if upto > self.released:
+            self.released = let_go(self.text, self.released, upto)
 
     def _bad_to_line_end(self, at: int, code: int) -> int:
         """Make the current record bad from its start to the line feed after byte `at`; return where
@@ -587,18 +615,82 @@ class _Scan:
         self.inq, self.opened, self.closed = False, -1, -2
         return end + 1
 
-    def _chunk(self, lo: int, hi: int) -> int:
+    def _find_events(self, upto: int) -> None:
+        """Find the NUL bytes and the sequences that are not UTF-8 before `upto` (a line feed's
+        next byte, or the end: no multi-byte sequence holds a line feed)."""
+        np = self.np
+        lo = self.checked
+        if upto <= lo:
+            return
+        found, codes = [], []
+        if self.text.find(b"\x00", lo, upto) >= 0:
+            nul = np.flatnonzero(self.arr[lo:upto] == NUL) + lo
+            found.append(nul)
+            codes.append(np.full(len(nul), HAS_NUL, np.uint8))
+        if not _ascii(self.arr[lo:upto]):
+            bad = _bad_text(self.text, lo, upto)
+            if len(bad):
+                self.copy = True
+                found.append(bad)
+                codes.append(np.full(len(bad), NOT_TEXT, np.uint8))
+        if found:
+            self._add(np.concatenate(found), np.concatenate(codes))
+        self.checked = upto
+
+    def _plain_chunk(self, lo: int, hi: int) -> int:
+        """`_chunk` for text without quotes or carriage returns: every line feed ends a record.
+
+        Separators are counted per record without listing them: their mask is packed
+        into 64-bit words, whose running popcount gives the separators before any line feed.
+        """
         np = self.np
         a = self.arr[lo:hi]
-        mask = (a == self.sep) | (a == LF)
-        if self.has_quote:
-            mask |= a == self.quote
-        if self.has_cr:
-            mask |= a == CR
+        padded = -(-len(a) // 64) * 64
+        seps_mask, lf_mask = self.masks[0, :padded], self.masks[1, :len(a)]
+        np.equal(a, self.sep, out=seps_mask[:len(a)])
+        seps_mask[len(a):] = False
+        lf = np.flatnonzero(np.equal(a, LF, out=lf_mask))
+        if not len(lf):
+            self.seps += int(np.count_nonzero(seps_mask))
+            return hi
+        self._find_events(lo + int(lf[-1]) + 1)
+        words = np.packbits(seps_mask, bitorder="little").view(np.uint64)
+        before = np.cumsum(np.bitwise_count(words), dtype=np.int64)  # separators up to each word's end
+        w = lf >> 6
+        below = np.bitwise_count(words[w] & ((np.uint64(1) << (lf & 63).astype(np.uint64)) - np.uint64(1)))
+        upto = below + np.where(w > 0, before[w - 1], 0)  # separators before each line feed
+        seps = np.diff(upto, prepend=0)
+        seps[0] += self.seps
+        self.seps = int(before[-1] - upto[-1])
+        ends = lf + lo
+        if self.fields > 1 and (seps == self.fields - 1).all() and not self._events_in(self.start, int(ends[-1])):
+            self.row += len(ends)
+            self.start = int(ends[-1]) + 1
+            return hi
+        self._records(ends, seps)
+        return hi
+
+    def _chunk(self, lo: int, hi: int) -> int:
+        np = self.np
+        has_quote = self.inq or self.text.find(self.quote_byte, lo, hi) >= 0
+        has_cr = self.text.find(b"\r", lo, hi) >= 0
+        if not has_quote and not has_cr:
+            return self._plain_chunk(lo, hi)
+        last_lf = self.text.rfind(b"\n", lo, hi)
+        if last_lf >= 0:
+            self._find_events(last_lf + 1)
+        a = self.arr[lo:hi]
+        mask, other = self.masks[0, :len(a)], self.masks[1, :len(a)]
+        np.equal(a, self.sep, out=mask)
+        mask |= np.equal(a, LF, out=other)
+        if has_quote:
+            mask |= np.equal(a, self.quote, out=other)
+        if has_cr:
+            mask |= np.equal(a, CR, out=other)
         at = np.flatnonzero(mask)
         kinds = a[at]
         at += lo
-        if self.has_quote:
+        if has_quote:
             quoted = kinds == self.quote
             if self.inq or quoted.any():
                 inside = (np.cumsum(quoted) - quoted + self.inq) & 1  # 1: inside a quoted field
@@ -620,13 +712,13 @@ class _Scan:
                     self.inq = bool(after)
                 structural = ~quoted & (inside == 0)
                 at, kinds = at[structural], kinds[structural]
-        if self.has_cr:
+        if has_cr:
             cr = kinds == CR
             if cr.any():
                 following = self.arr[np.minimum(at[cr] + 1, self.size - 1)]
                 bare = at[cr][(following != LF) & (at[cr] + 1 < self.size)]
                 if len(bare):
-                    self._add_events(bare, BARE_CR)
+                    self._add(bare, np.full(len(bare), BARE_CR, np.uint8))
                 at, kinds = at[~cr], kinds[~cr]
         lf = np.flatnonzero(kinds == LF)
         if not len(lf):
@@ -637,7 +729,7 @@ class _Scan:
         self.seps = len(kinds) - int(lf[-1]) - 1
         ends = at[lf]
         if (self.fields > 1 and (seps == self.fields - 1).all() and not self._events_in(self.start, int(ends[-1]))
-                and not self.has_cr):
+                and not has_cr):
             # the common case: every record has its fields (so none is blank) and nothing else is wrong
             self.row += len(ends)
             self.start = int(ends[-1]) + 1
@@ -674,10 +766,10 @@ class _Scan:
         j = int(bad[0])
         return j, QUOTE_INSIDE if opening[j] else QUOTE_AFTER
 
-    def _add_events(self, positions: np.ndarray, code: int) -> None:
+    def _add(self, positions: np.ndarray, codes: np.ndarray) -> None:
         np = self.np
         pos = np.concatenate([self.events, positions])
-        codes = np.concatenate([self.event_codes, np.full(len(positions), code, np.uint8)])
+        codes = np.concatenate([self.event_codes, codes])
         order = np.argsort(pos, kind="stable")
         self.events, self.event_codes = pos[order], codes[order]
 

@@ -158,7 +158,7 @@ def test_every_row_reaches_the_output_as_the_csv_module_reads_it_or_is_a_located
         good = sorted((tuple(v if v != "" else None for v in e) for e in expected if e), key=repr)
         bad = {i for i, e in enumerate(expected, start=1) if e is None}
         for small, chunk in ((inputfiles.SMALL, inputfiles.CHUNK), (0, 7)):
-            with mock.patch.object(inputfiles, "SMALL", small), mock.patch.object(inputfiles, "CHUNK", chunk):
+            with mock.patch.multiple(inputfiles, SMALL=small, CHUNK=chunk):
                 frame, rejected = _read(root, source)
             if schema:
                 got = [tuple(v if v != "" else None for v in r) for r in frame.select(HEADER).rows()]
