@@ -478,7 +478,8 @@ def _csv(name: str, read: FileRead, text: bytes | mmap.mmap, start: int, sep: st
     read.header = tuple(names)
     read.header_text = raw_header.rstrip(b"\r") + b"\n"
     read.body_start = min(end + 1, len(text))
-    read.shape = shape(text, read.body_start, len(names), ord(sep), ord(quote))
+    read.shape = shape(text, read.body_start, len(names), ord(sep), ord(quote),
+                       read.real if isinstance(text, mmap.mmap) else None)
     read.bad_text = [bytes(text[start:min(end, start + (64 << 10))]) for start, end in
                      zip(read.shape.bad_start.tolist(), read.shape.bad_end.tolist(), strict=True)]
     if read.shape.copy_needed:
@@ -503,14 +504,19 @@ def repaired(text: bytes | mmap.mmap, found: Shape, fields: int, sep: str = ",")
 # ---------------------------------------------------------------- CSV record shapes
 
 
-def shape(text: bytes | mmap.mmap, begin: int, fields: int, sep: int = 44, quote: int = 34) -> Shape:
-    """The records of CSV `text` from byte `begin` on, checked against `fields` fields each."""
+def shape(text: bytes | mmap.mmap, begin: int, fields: int, sep: int = 44, quote: int = 34,
+          path: str | None = None) -> Shape:
+    """The records of CSV `text` from byte `begin` on, checked against `fields` fields each.
+
+    `path`, the file `text` maps, lets plain stretches be read into one reused buffer
+    instead of touching the mapping (cheaper than its page faults, and no resident pages).
+    """
     if isinstance(text, bytes) and len(text) <= SMALL and fields > 1:
         rows = _plain_rows(text[begin:], fields, sep, quote)
         if rows is not None:
             empty, codes = _empty()
             return Shape(rows, empty, empty, empty, empty, codes, empty, False)
-    return _Scan(text, begin, fields, sep, quote).run()
+    return _Scan(text, begin, fields, sep, quote, path).run()
 
 
 @lru_cache(maxsize=1)
@@ -554,10 +560,14 @@ class _Scan:
     the text one bad record (its field never ends).
     """
 
-    def __init__(self, text: bytes | mmap.mmap, begin: int, fields: int, sep: int, quote: int):
+    def __init__(self, text: bytes | mmap.mmap, begin: int, fields: int, sep: int, quote: int,
+                 path: str | None = None):
         import numpy as np
 
         self.np = np
+        self.fd = os.open(path, os.O_RDONLY) if path is not None and hasattr(os, "preadv") else None
+        self.buf = bytearray(CHUNK if self.fd is not None else 0)
+        self.buf_arr = np.frombuffer(self.buf, dtype=np.uint8)
         self.text = text
         self.arr = np.frombuffer(text, dtype=np.uint8) if len(text) else np.zeros(0, np.uint8)
         self.size = len(self.arr)
@@ -576,12 +586,18 @@ class _Scan:
         self.released = begin  # mapped pages before this are let go (`let_go`)
 
     def run(self) -> Shape:
+        try:
+            return self._run()
+        finally:
+            if self.fd is not None:
+                os.close(self.fd)
+
+    def _run(self) -> Shape:
         np = self.np
         lo = self.start
         while True:
             while lo < self.size:
                 lo = self._chunk(lo, min(lo + CHUNK, self.size))
-                self._release(lo - 2 * CHUNK)
             if not self.inq:
                 break
             # a quote never closed: its field, and so its record, runs to the end of the text
@@ -615,20 +631,25 @@ class _Scan:
         self.inq, self.opened, self.closed = False, -1, -2
         return end + 1
 
-    def _find_events(self, upto: int) -> None:
+    def _find_events(self, upto: int, base: int = -1) -> None:
         """Find the NUL bytes and the sequences that are not UTF-8 before `upto` (a line feed's
-        next byte, or the end: no multi-byte sequence holds a line feed)."""
+        next byte, or the end: no multi-byte sequence holds a line feed), in the buffer when it
+        holds them (it starts at `base`), else in the text."""
         np = self.np
         lo = self.checked
         if upto <= lo:
             return
+        if 0 <= base <= lo:
+            text, arr, shift = self.buf, self.buf_arr, base
+        else:
+            text, arr, shift = self.text, self.arr, 0
         found, codes = [], []
-        if self.text.find(b"\x00", lo, upto) >= 0:
-            nul = np.flatnonzero(self.arr[lo:upto] == NUL) + lo
+        if text.find(b"\x00", lo - shift, upto - shift) >= 0:
+            nul = np.flatnonzero(arr[lo - shift:upto - shift] == NUL) + lo
             found.append(nul)
             codes.append(np.full(len(nul), HAS_NUL, np.uint8))
-        if not _ascii(self.arr[lo:upto]):
-            bad = _bad_text(self.text, lo, upto)
+        if not _ascii(arr[lo - shift:upto - shift]):
+            bad = _bad_text(text, lo - shift, upto - shift) + shift
             if len(bad):
                 self.copy = True
                 found.append(bad)
@@ -637,14 +658,14 @@ class _Scan:
             self._add(np.concatenate(found), np.concatenate(codes))
         self.checked = upto
 
-    def _plain_chunk(self, lo: int, hi: int) -> int:
-        """`_chunk` for text without quotes or carriage returns: every line feed ends a record.
+    def _plain_chunk(self, lo: int, hi: int, a: np.ndarray, base: int) -> int:
+        """`_chunk` for text without quotes or carriage returns (`a`, the bytes from `lo` to `hi`):
+        every line feed ends a record. The next chunk starts after the last line feed.
 
         Separators are counted per record without listing them: their mask is packed
         into 64-bit words, whose running popcount gives the separators before any line feed.
         """
         np = self.np
-        a = self.arr[lo:hi]
         padded = -(-len(a) // 64) * 64
         seps_mask, lf_mask = self.masks[0, :padded], self.masks[1, :len(a)]
         np.equal(a, self.sep, out=seps_mask[:len(a)])
@@ -653,7 +674,7 @@ class _Scan:
         if not len(lf):
             self.seps += int(np.count_nonzero(seps_mask))
             return hi
-        self._find_events(lo + int(lf[-1]) + 1)
+        self._find_events(lo + int(lf[-1]) + 1, base)
         words = np.packbits(seps_mask, bitorder="little").view(np.uint64)
         before = np.cumsum(np.bitwise_count(words), dtype=np.int64)  # separators up to each word's end
         w = lf >> 6
@@ -661,21 +682,30 @@ class _Scan:
         upto = below + np.where(w > 0, before[w - 1], 0)  # separators before each line feed
         seps = np.diff(upto, prepend=0)
         seps[0] += self.seps
-        self.seps = int(before[-1] - upto[-1])
+        self.seps = 0  # the bytes after the last line feed are read again with the next chunk
         ends = lf + lo
         if self.fields > 1 and (seps == self.fields - 1).all() and not self._events_in(self.start, int(ends[-1])):
             self.row += len(ends)
             self.start = int(ends[-1]) + 1
-            return hi
-        self._records(ends, seps)
-        return hi
+        else:
+            self._records(ends, seps)
+        return int(ends[-1]) + 1
 
     def _chunk(self, lo: int, hi: int) -> int:
         np = self.np
-        has_quote = self.inq or self.text.find(self.quote_byte, lo, hi) >= 0
-        has_cr = self.text.find(b"\r", lo, hi) >= 0
-        if not has_quote and not has_cr:
-            return self._plain_chunk(lo, hi)
+        if self.fd is not None:
+            hi = lo + os.preadv(self.fd, [memoryview(self.buf)[:hi - lo]], lo)
+            text, base = self.buf, lo
+            has_quote = self.inq or text.find(self.quote_byte, 0, hi - lo) >= 0
+            has_cr = text.find(b"\r", 0, hi - lo) >= 0
+            if not has_quote and not has_cr:
+                return self._plain_chunk(lo, hi, self.buf_arr[:hi - lo], base)
+        else:
+            has_quote = self.inq or self.text.find(self.quote_byte, lo, hi) >= 0
+            has_cr = self.text.find(b"\r", lo, hi) >= 0
+            if not has_quote and not has_cr:
+                return self._plain_chunk(lo, hi, self.arr[lo:hi], -1)
+        self._release(lo - 2 * CHUNK)
         last_lf = self.text.rfind(b"\n", lo, hi)
         if last_lf >= 0:
             self._find_events(last_lf + 1)
