@@ -55,6 +55,9 @@ LF, CR, NUL = 10, 13, 0
 CHUNK = 1 << 19  # bytes looked at per vectorized step (its temporary arrays stay below glibc's mmap threshold)
 SMALL = 64 << 10  # files up to this size are read whole, and small CSV files read together
 EAGER = 64 << 20  # NDJSON files up to this size are read at once, so that a syntax error can be located
+REMEMBER = 1 << 20  # CSV files from this size on are remembered (state/input-checks.sqlite) once found clean
+VERDICTS = "input-checks.sqlite"
+CHECK_VERSION = 1  # raised when the record check changes: remembered verdicts no longer count
 
 # reasons a CSV record is bad, most telling first
 QUOTE_INSIDE, QUOTE_AFTER, QUOTE_OPEN, HAS_NUL, NOT_TEXT, BARE_CR, FIELDS = range(7)
@@ -152,6 +155,8 @@ class FileRead:
     fmt: str
     size: int
     encoding: str
+    identity: str = ""  # real path, device, inode, size, modification and change times: a version of the file
+    state: str = ""  # the workspace's state folder (remembered verdicts)
     header: tuple[str, ...] | None = None  # CSV column names
     header_text: bytes = b""  # the CSV header record as found (UTF-8, no byte order mark)
     shape: Shape | None = None  # CSV records
@@ -224,6 +229,58 @@ class _Cache:
                 self.held -= _held(old)
 
 
+class _Remembered:
+    """Large CSV files found clean, by version (`FileRead.identity`), kept across runs in
+    `state/input-checks.sqlite`: checking a 2.8 GB file costs seconds, and backfills read the
+    same landing files again and again. A file is a new version when its size, modification
+    or change time (which no tool can set back), inode or device differ; files with bad rows
+    are not remembered, and are checked on every read. Best effort: when the file cannot be
+    used (a read-only state folder, a lock held too long) files are simply checked again."""
+
+    def __init__(self) -> None:
+        self.connections: dict[str, Any] = {}
+        self.lock = threading.Lock()
+
+    def _db(self, state: str) -> Any:
+        import sqlite3
+
+        with self.lock:
+            if state not in self.connections:
+                try:
+                    conn = sqlite3.connect(os.path.join(state, VERDICTS), timeout=2, isolation_level=None,
+                                           check_same_thread=False)
+                    conn.execute("CREATE TABLE IF NOT EXISTS clean (file TEXT PRIMARY KEY, rows INTEGER NOT NULL, "
+                                 "version INTEGER NOT NULL)")
+                except sqlite3.Error:
+                    conn = None
+                self.connections[state] = conn
+            return self.connections[state]
+
+    def rows(self, state: str, identity: str) -> int | None:
+        import sqlite3
+
+        db = self._db(state)
+        try:
+            found = db.execute("SELECT rows FROM clean WHERE file = ? AND version = ?",
+                               (identity, CHECK_VERSION)).fetchone() if db is not None else None
+        except sqlite3.Error:
+            return None
+        return None if found is None else int(found[0])
+
+    def remember(self, state: str, identity: str, rows: int) -> None:
+        import sqlite3
+
+        db = self._db(state)
+        try:
+            if db is not None:
+                db.execute("INSERT OR REPLACE INTO clean VALUES (?, ?, ?)", (identity, rows, CHECK_VERSION))
+        except sqlite3.Error:
+            pass
+
+
+_VERDICTS = _Remembered()
+
+
 def _held(read: FileRead) -> int:
     return (len(read.data) if read.data is not None else 0) + sum(len(b) for b in read.bad_text)
 
@@ -251,7 +308,8 @@ def prepare(name: str, path: str, label: str, fmt: str, encoding: str | None,
     hit = _CACHE.get(key)
     if hit is not None:
         return FileRead(**{**hit.__dict__, "path": path, "label": label, "kept": None})
-    read = FileRead(path, real, label, fmt, st.st_size, enc)
+    identity = f"{real}\0{st.st_dev}\0{st.st_ino}\0{st.st_size}\0{st.st_mtime_ns}\0{st.st_ctime_ns}\0{enc}"
+    read = FileRead(path, real, label, fmt, st.st_size, enc, identity, os.path.join(roots[0], "state"))
     try:
         if fmt == "parquet":
             _parquet(name, read)
@@ -478,8 +536,16 @@ def _csv(name: str, read: FileRead, text: bytes | mmap.mmap, start: int, sep: st
     read.header = tuple(names)
     read.header_text = raw_header.rstrip(b"\r") + b"\n"
     read.body_start = min(end + 1, len(text))
+    remember = read.size >= REMEMBER and read.data is None
+    rows = _VERDICTS.rows(read.state, read.identity) if remember else None
+    if rows is not None:  # this very version of the file was found clean before
+        empty, codes = _empty()
+        read.shape = Shape(rows, empty, empty, empty, empty, codes, empty, False)
+        return
     read.shape = shape(text, read.body_start, len(names), ord(sep), ord(quote),
                        read.real if isinstance(text, mmap.mmap) else None)
+    if remember and not len(read.shape.skip):
+        _VERDICTS.remember(read.state, read.identity, read.shape.rows)
     read.bad_text = [bytes(text[start:min(end, start + (64 << 10))]) for start, end in
                      zip(read.shape.bad_start.tolist(), read.shape.bad_end.tolist(), strict=True)]
     if read.shape.copy_needed:

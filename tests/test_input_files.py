@@ -273,6 +273,36 @@ def test_a_file_is_examined_once_per_process_whatever_reads_it(tmp_path: Path, m
     assert [r["rows_rejected"] for r in ledger_rows(root, "SELECT rows_rejected FROM weir_runs")] == [1, 1]
 
 
+def test_a_large_clean_file_is_checked_once_across_runs_and_again_once_it_changes(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
+    """Hardening item 7 (its cost): a clean file's verdict is remembered by version (state/input-checks.sqlite),
+    so re-runs over unchanged landing files skip the check; a changed file is checked again."""
+    from runner import inputfiles
+
+    data = HEADER + b"\n".join(ROWS) + b"\n"
+    root = workspace(tmp_path, job(), {"rides.csv": data})
+    checked: list[str] = []
+    real_shape = inputfiles.shape
+
+    def counted(*args: Any, **kwargs: Any) -> Any:
+        checked.append("x")
+        return real_shape(*args, **kwargs)
+
+    monkeypatch.setattr(inputfiles, "shape", counted)
+    monkeypatch.setattr(inputfiles, "REMEMBER", 0)  # remember files of every size
+    for _ in range(2):
+        inputfiles._CACHE.items.clear()  # a new process would start without it
+        assert backfill(root, "rides_in", lo=DAY, hi=NEXT, extra=("--force", "--yes"))["windows"][0]["status"] == "done"
+    assert checked == ["x"]
+    assert (root / "state" / "input-checks.sqlite").exists()
+    with open(root / LANDING / "rides.csv", "ab") as fh:
+        fh.write(b"R0000005,2026-03-22T10:13:00Z\n")  # the same file, now with a broken row
+    inputfiles._CACHE.items.clear()
+    assert run_day(root)["status"] == "done"
+    assert checked == ["x", "x"]
+    assert [(b["source_row"], b["reason"]) for b in rejected(root)] == [(5, "2 fields, the header has 5")]
+
+
 # ---------------------------------------------------------------- item 17: encodings and read errors
 
 

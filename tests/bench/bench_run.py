@@ -1,6 +1,6 @@
 """Benchmarks for running windows (run by hand; not collected by pytest).
 
-    python tests/bench/bench_run.py big   [--rows 45000000] [--repeats 3] [--compare DIR]
+    python tests/bench/bench_run.py big   [--rows 45000000] [--repeats 3] [--compare DIR] [--cold]
     python tests/bench/bench_run.py small [--hours 8760] [--sample 40]
 
 `big`: one large window, a CSV of rides grouped by two low-cardinality
@@ -11,6 +11,9 @@ peak resident memory (from wait4's rusage of each child):
   - a DuckDB script and a pandas script for reference;
   - with --compare DIR, also `weir run` from another checkout (e.g. the main
     branch), to measure what a change costs side by side.
+weir remembers input files it found well-formed (state/input-checks.sqlite),
+so from the second round on `weir run` reads a file already checked; with
+--cold that file is removed before every round: every run checks the CSV.
 
 `small`: a year of hourly windows with small inputs. `weir backfill` over all
 of them (default workers) against one process per window (what a cron line
@@ -138,7 +141,8 @@ output: {path: "out/{start:%Y-%m-%d}.parquet"}
 """
 
 
-def bench_big(base: Path, rows: int, repeats: int, skip_pandas: bool, compare: Path | None = None) -> None:
+def bench_big(base: Path, rows: int, repeats: int, skip_pandas: bool, compare: Path | None = None,
+              cold: bool = False) -> None:
     data = base / "big" / "data" / "rides.csv"
     print(f"generating {rows:,} rows ...", flush=True)
     make_big_csv(data, rows)
@@ -167,10 +171,13 @@ def bench_big(base: Path, rows: int, repeats: int, skip_pandas: bool, compare: P
             # run from `base`, so that no `runner` folder in the current one shadows the checkout's
             checkout = checkouts.get(name, here)
             env = checkout_env(checkout, None if checkout == here else base / "compare-ledger.sqlite")
+            if cold:
+                (ws / "state" / "input-checks.sqlite").unlink(missing_ok=True)
             results[name].append(measure(cmd, cwd=base, env=env))
             print(f"  round {i + 1}: {name}: {results[name][-1][0]:.2f}s {results[name][-1][1]:.0f} MB", flush=True)
     base_wall = min(w for w, _ in results["polars script (streaming)"])
-    print(f"\nOne window over {size_gb:.2f} GB of CSV ({rows:,} rows); {machine()}; best of {repeats}")
+    print(f"\nOne window over {size_gb:.2f} GB of CSV ({rows:,} rows); {machine()}; best of {repeats}"
+          f"{'; every input check from scratch (--cold)' if cold else ''}")
     print("| program | wall | vs polars script | peak RSS |")
     print("| --- | ---: | ---: | ---: |")
     for name, vals in results.items():
@@ -270,10 +277,11 @@ def main() -> None:
     parser.add_argument("--sample", type=int, default=40)
     parser.add_argument("--skip-pandas", action="store_true")
     parser.add_argument("--compare", type=Path, help="another checkout whose `weir run` to time beside this one")
+    parser.add_argument("--cold", action="store_true", help="forget which input files weir found well-formed")
     args = parser.parse_args()
     args.dir.mkdir(parents=True, exist_ok=True)
     if args.what == "big":
-        bench_big(args.dir, args.rows, args.repeats, args.skip_pandas, args.compare)
+        bench_big(args.dir, args.rows, args.repeats, args.skip_pandas, args.compare, args.cold)
     else:
         bench_small(args.dir, args.hours, args.sample)
 
