@@ -2,8 +2,8 @@
 and which CSV rows are not records of the header's shape.
 
 `prepare` looks at one file once (a small cache keeps the answer for the
-process, keyed by real path, size and modification time), before any polars
-plan reads it:
+process; large CSV files found clean are remembered across runs in
+`state/input-checks.sqlite`, by version), before any polars plan reads it:
 
 * its real path must lie inside the workspace or under a folder the input
   allows (`allow_outside:`), so a symlink in a landing folder cannot pull in
@@ -14,7 +14,8 @@ plan reads it:
 * a CSV file's rows are checked against RFC 4180: every record has as many
   fields as the header, quotes open a field or close one, no NUL bytes, no
   bare carriage returns, valid text. The check runs over the bytes with
-  vectorized numpy operations (one pass, in chunks); rows that fail it are
+  vectorized numpy operations (one pass, in chunks read into one reused
+  buffer); rows that fail it are
   *bad rows* with the file, the row number and the reason, and blank lines
   are skipped. Rows keep their numbers: polars reads the file (or, where
   polars could not, a copy with each bad record replaced by an empty one)
