@@ -32,6 +32,7 @@ class FileIndex:
     folders: dict[str, list[tuple[str, int, int]]] = field(default_factory=dict)
     listed: bool = False
     by_name: dict[str, dict[str, tuple[int, int]]] = field(default_factory=dict)
+    real_folders: dict[str, str] = field(default_factory=dict)  # folder -> its real path (inputfiles.confine)
 
     @classmethod
     def build(cls, root: Path, template: str) -> FileIndex:

@@ -5,7 +5,8 @@ stored on its own so that a change can be attributed:
 
 * `spec`: the normalized job spec. Comments, key order, `description` and the
   operational settings (retries, settle, recheck, catch-up, lateness, the
-  range `start`/`end`, output checks) do not count, nor does step code.
+  range `start`/`end`, output checks, an input's `allow_outside`) do not
+  count, nor does step code.
 * `code`: the SQL text of each step; for python steps the module file's bytes.
 * `input`: for each input file its relative path, size and mtime_ns (or a hash
   of its bytes with `fingerprint: content`); for database inputs a digest of
@@ -66,6 +67,8 @@ def normalized_spec(spec: JobSpec) -> dict[str, Any]:
         "kind": "sql" if "sql" in step else "python"} for step in data["steps"]]
     output = data.get("output", {})
     output.pop("checks", None)
+    for source in data.get("inputs", {}).values():
+        source.pop("allow_outside", None)  # a permission: the files read are the same
     return data
 
 

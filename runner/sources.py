@@ -19,23 +19,19 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from runner.errors import WeirError
+from runner.inputfiles import BadRows, InputError
 from runner.spec import Column, DatabaseInput, FileInput, format_from_name
 
 if TYPE_CHECKING:
     import polars as pl
 
+    from runner.inputfiles import FileRead
     from runner.windows import Window
 
-ROW = "__weir_row"
+ROW = "__weir_row"  # a row's number in its file (0 = the first record after a CSV header)
+FILE = "__weir_file"  # the file's place among the input's files
 
-
-class InputError(WeirError):
-    """An input cannot be read as declared (missing column, bad value, bad query)."""
-
-
-class BadRows(InputError):
-    """Bad rows under `on_bad_rows: fail`, or more bad rows than the limits allow."""
+__all__ = ["BadRows", "InputError"]
 
 
 @dataclass
@@ -61,20 +57,17 @@ def find_files(root: Path, name: str, source: FileInput, window: Window, index: 
 
 
 def files_for_patterns(root: Path, name: str, source: FileInput, patterns: list[str], index: Any = None) -> FileSet:
-    """The files of one input matching already rendered `patterns`."""
-    from runner.fileindex import listing, manifest
+    """The files of one input matching already rendered `patterns`; InputError when one of them
+    leads outside the workspace (and the folders the input allows)."""
+    from runner.fileindex import listing, manifest, relative
+    from runner.inputfiles import confine, outside_roots
 
     files = listing(root, patterns, index)
+    confine(name, [p for p, _, _ in files], outside_roots(root, source.allow_outside),
+            lambda p: relative(root, p), getattr(index, "real_folders", None))
     entries = manifest(root, name, files, source.fingerprint == "content")
     newest = max((m for _, _, m in files), default=None)
     return FileSet(name, patterns, [p for p, _, _ in files], entries, newest)
-
-
-def _relative(root: Path, path: str) -> str:
-    try:
-        return Path(path).resolve().relative_to(root.resolve()).as_posix()
-    except ValueError:
-        return str(Path(path).resolve())
 
 
 def file_sha256(path: str | Path) -> str:
@@ -129,6 +122,12 @@ class InputStats:
 # Positions order the rows of one input across its files: file number * 2**40 + row number.
 POSITION = "__weir_position"
 _FILE_SHIFT = 1 << 40
+
+
+def _position() -> pl.Expr:
+    import polars as pl
+
+    return (pl.col(ROW).cast(pl.Int64) + pl.col(FILE).cast(pl.Int64) * _FILE_SHIFT).alias(POSITION)
 _FIRST, _LAST, _COPIES, _REPEAT = "__weir_first", "__weir_last", "__weir_copies", "__weir_repeat"
 
 
@@ -162,10 +161,10 @@ def _key_exprs(key: list[str], columns: dict[str, Column]) -> list[pl.Expr]:
     return [pl.col(TYPED + k if k in columns else k).alias(f"__weir_key{i}") for i, k in enumerate(key)]
 
 
-def key_frame(lf: pl.LazyFrame, number: int, key: list[str], columns: dict[str, Column], raw_schema: pl.Schema,
+def key_frame(lf: pl.LazyFrame, key: list[str], columns: dict[str, Column], raw_schema: pl.Schema,
               time_column: str | None, window: Window, job_tz: str,
               samples: dict[str, pl.Series] | None = None) -> pl.LazyFrame:
-    """One file's key columns (typed) and row positions, restricted to the window, read lazily."""
+    """An input's key columns (typed) and row positions, restricted to the window, read lazily."""
     import polars as pl
 
     from runner.checks import apply_fast, cast_frame, plan_casts, settle
@@ -175,7 +174,7 @@ def key_frame(lf: pl.LazyFrame, number: int, key: list[str], columns: dict[str, 
     plan = plan_casts(declared, raw_schema, job_tz, samples)
     inside = window_filter(columns, time_column, window, job_tz)
     keys = _key_exprs(key, columns)
-    position = (pl.col(ROW).cast(pl.Int64) + number * _FILE_SHIFT).alias(POSITION)
+    position = _position()
 
     def batch(frame: pl.DataFrame) -> pl.DataFrame:
         frame = settle(frame, plan)
@@ -183,8 +182,9 @@ def key_frame(lf: pl.LazyFrame, number: int, key: list[str], columns: dict[str, 
             frame = frame.filter(inside.fill_null(True))
         return frame.select(*keys, position)
 
-    probe = cast_frame(pl.DataFrame(schema={c: raw_schema[c] for c in [ROW, *wanted]}), plan).select(*keys, position)
-    return apply_fast(lf.select(ROW, *wanted), plan).map_batches(batch, schema=probe.schema, streamable=True,
+    probe = cast_frame(pl.DataFrame(schema={c: raw_schema[c] for c in [ROW, FILE, *wanted]}), plan
+                       ).select(*keys, position)
+    return apply_fast(lf.select(ROW, FILE, *wanted), plan).map_batches(batch, schema=probe.schema, streamable=True,
                                                                   validate_output_schema=False)
 
 
@@ -235,7 +235,7 @@ BAD, INSIDE = "__weir_bad", "__weir_inside"
 
 
 class BatchInspector:
-    """Checks the batches of one file: count, keep the window, cast, judge, split bad rows.
+    """Checks the batches of one input: count, keep the window, cast, judge, split bad rows.
 
     The work is in two parts. `stage` adds native expressions to the scan:
     the fast casts, a flag on rows that may break a rule and a flag on rows
@@ -248,20 +248,20 @@ class BatchInspector:
 
     `repeats` (from `repeated_keys`) lists the key values seen more than once in
     the window; rows holding one of them, other than its first row, break the
-    key rule. `number` is the file's place among the input's files. `samples`
-    (a few hundred values of text timestamp columns) pick the fast casts.
+    key rule. Batches carry each row's file (`FILE`, an index into `labels`)
+    and its number in that file (`ROW`). `samples` (a few hundred values of
+    text timestamp columns) pick the fast casts.
     """
 
-    def __init__(self, name: str, label: str, source: FileInput | DatabaseInput, columns: dict[str, Column],
+    def __init__(self, name: str, labels: list[str], source: FileInput | DatabaseInput, columns: dict[str, Column],
                  raw_schema: pl.Schema, window: Window, job_tz: str, stats: InputStats,
-                 repeats: pl.DataFrame | None = None, number: int = 0,
-                 samples: dict[str, pl.Series] | None = None):
+                 repeats: pl.DataFrame | None = None, samples: dict[str, pl.Series] | None = None):
         import polars as pl
 
         from runner.checks import column_rules, plan_casts
 
         self.name = name
-        self.label = label
+        self.labels = labels
         self.stats = stats
         self.mode = getattr(source, "on_bad_rows", "fail")
         self.max_rows = getattr(source, "max_bad_rows", None)
@@ -277,16 +277,16 @@ class BatchInspector:
         if repeats is not None and repeats.height:
             key = list(source.key or [])
             self.keys = _key_exprs(key, columns)
-            self.position = (pl.col(ROW).cast(pl.Int64) + number * _FILE_SHIFT).alias(POSITION)
+            self.position = _position()
             self.repeats = repeats.select(*[f"__weir_key{i}" for i in range(len(key))], _FIRST)
             reasons.append(pl.when(pl.col(_REPEAT)).then(pl.lit(f"key ({', '.join(key)}) repeated")))
         self.reason = pl.coalesce(reasons) if reasons else None
         self.keep_extra = getattr(source, "extra", "keep") == "keep"
         self.output = [
             (pl.col(f"__typed_{c}").alias(c) if c in columns else pl.col(c))
-            for c in raw_schema.names() if c != ROW and (c in columns or self.keep_extra)
+            for c in raw_schema.names() if c not in (ROW, FILE) and (c in columns or self.keep_extra)
         ]
-        self.raw_names = [c for c in raw_schema.names() if c != ROW]
+        self.raw_names = [c for c in raw_schema.names() if c not in (ROW, FILE)]
 
     def stage(self, frame: pl.LazyFrame) -> pl.LazyFrame:
         """`frame` (raw columns and row numbers) with typed columns and the two flags, natively."""
@@ -344,7 +344,8 @@ class BatchInspector:
 
     def _describe(self, row: dict[str, Any]) -> str:
         reason = row["__reason"]
-        where = f"{self.label}, row {row[ROW] + 1}" if row.get(ROW) is not None else self.label
+        label = self.labels[row[FILE]]
+        where = f"{label}, row {row[ROW] + 1}" if row.get(ROW) is not None else label
         if reason.startswith("key ("):
             return f"{where}: {reason}"
         column, rule = reason.split(": ", 1)
@@ -365,7 +366,7 @@ class BatchInspector:
             kept = bad.select([
                 *cols,
                 pl.col("__reason").alias("reason"),
-                pl.lit(self.label).alias("source_file"),
+                pl.Series("source_file", self.labels, dtype=pl.String).gather(bad[FILE]),
                 (pl.col(ROW).cast(pl.Int64) + 1).alias("source_row") if ROW in bad.columns
                 else pl.lit(None, dtype=pl.Int64).alias("source_row"),
                 pl.lit(self.name).alias("input"),
@@ -379,7 +380,7 @@ class BatchInspector:
 
         return {
             c: polars_dtype(self.columns[c].type) if c in self.columns else raw_schema[c]
-            for c in raw_schema.names() if c != ROW and (c in self.columns or self.keep_extra)
+            for c in raw_schema.names() if c not in (ROW, FILE) and (c in self.columns or self.keep_extra)
         }
 
 
@@ -391,31 +392,182 @@ def declared_columns(source: FileInput | DatabaseInput) -> dict[str, Column]:
     return columns
 
 
-def _scan(path: str, fmt: str, text_columns: list[str], row_index: bool) -> pl.LazyFrame:
+def _scan(source: str | bytes, fmt: str, text_columns: list[str], row_index: bool) -> pl.LazyFrame:
+    """A lazy read of one prepared file (`FileRead.source()`); CSV rows with too many fields
+    are cut rather than refused: `inputfiles` has found them, and they are skipped by number."""
     import polars as pl
 
     index = ROW if row_index else None
+    overrides = {c: pl.String for c in text_columns} or None
     if fmt == "csv":
-        return pl.scan_csv(path, schema_overrides={c: pl.String for c in text_columns} or None,
-                           row_index_name=index, infer_schema_length=10_000)
+        return pl.scan_csv(source, schema_overrides=overrides, row_index_name=index, infer_schema_length=10_000,
+                           truncate_ragged_lines=True)
     if fmt == "ndjson":
-        lf = pl.scan_ndjson(path, schema_overrides={c: pl.String for c in text_columns} or None,
-                            row_index_name=index, infer_schema_length=10_000)
+        return pl.scan_ndjson(source, schema_overrides=overrides, row_index_name=index, infer_schema_length=10_000)
+    return pl.scan_parquet(source, row_index_name=index)
+
+
+def _skip(lf: pl.LazyFrame, read: FileRead) -> pl.LazyFrame:
+    """`lf` without the rows of `read` that are not data (blank lines, bad records)."""
+    import polars as pl
+
+    if read.shape is None or not len(read.shape.skip):
         return lf
-    return pl.scan_parquet(path, row_index_name=index)
+    return lf.filter(~pl.col(ROW).is_in(pl.Series(read.shape.skip, dtype=pl.Int64).implode()))
+
+
+def _ndjson(name: str, read: FileRead, text_columns: list[str], row_index: bool) -> pl.LazyFrame:
+    """An NDJSON file of at most `inputfiles.EAGER` bytes, read at once: a line polars cannot read
+    fails the window naming the file and, as Python's json module finds it, the line."""
+    import polars as pl
+
+    try:
+        return pl.read_ndjson(read.source(), schema_overrides={c: pl.String for c in text_columns} or None,
+                              row_index_name=ROW if row_index else None, infer_schema_length=None).lazy()
+    except pl.exceptions.PolarsError as exc:
+        raise _unreadable(name, read, exc) from None
+
+
+def _unreadable(name: str, read: FileRead, exc: Exception) -> InputError:
+    """The error for a file polars cannot read, naming it (and, for NDJSON, the line Python's json
+    module cannot read)."""
+    from runner.inputfiles import EAGER, json_problem
+
+    if read.fmt == "ndjson" and read.size <= EAGER:
+        found = json_problem(bytes(read.text()))
+        if found is not None:
+            return InputError(f"input {name}: {read.label}, line {found[0]}: {found[1]}")
+    return InputError(f"input {name}: cannot read {read.label}: {str(exc).splitlines()[0]}")
+
+
+def _one_file(name: str, number: int, read: FileRead, text_columns: list[str], numbered: bool) -> pl.LazyFrame:
+    """One file read lazily (an NDJSON file of moderate size at once); with `numbered`, its rows
+    carry FILE and ROW."""
+    import polars as pl
+
+    from runner.inputfiles import EAGER
+
+    skips = read.shape is not None and len(read.shape.skip) > 0
+    if read.fmt == "ndjson" and read.size <= EAGER:
+        lf = _ndjson(name, read, text_columns, numbered)
+    else:
+        lf = _skip(_scan(read.source(), read.fmt, text_columns, numbered or skips), read)
+    if numbered:
+        return lf.with_columns(pl.lit(number, dtype=pl.UInt32).alias(FILE))
+    return lf.drop(ROW) if skips else lf
+
+
+def _small_files(numbers: list[int], reads: list[FileRead], text_columns: list[str], numbered: bool
+                 ) -> pl.LazyFrame:
+    """Small CSV files with one header, read as one text (their records one after another):
+    one polars read instead of one per file, which for thousands of small files is most of
+    the cost. Each row still carries its file and row number."""
+    import numpy as np
+    import polars as pl
+
+    assert all(r.shape is not None for r in reads)
+    counts = np.array([r.shape.rows for r in reads], dtype=np.int64)  # type: ignore[union-attr]
+    text = reads[0].header_text + b"".join(r.body() for r in reads)
+    try:
+        frame = pl.read_csv(text, schema_overrides={c: pl.String for c in text_columns} or None,
+                            infer_schema_length=None, truncate_ragged_lines=True)
+    except pl.exceptions.PolarsError as exc:
+        names = ", ".join(r.label for r in reads[:3]) + (" ..." if len(reads) > 3 else "")
+        raise InputError(f"cannot read {names}: {str(exc).splitlines()[0]}") from None
+    if frame.height != int(counts.sum()):
+        raise InputError(f"reading {reads[0].label} and {len(reads) - 1} other file(s) together found "
+                         f"{frame.height} rows where their records number {int(counts.sum())}")
+    firsts = np.repeat(np.cumsum(counts) - counts, counts)
+    rows = np.arange(frame.height, dtype=np.int64) - firsts
+    keep = np.ones(frame.height, dtype=bool)
+    for first, r in zip(np.cumsum(counts) - counts, reads, strict=True):
+        keep[first + r.shape.skip] = False  # type: ignore[union-attr]
+    if numbered:
+        frame = frame.with_columns(pl.Series(ROW, rows, dtype=pl.UInt32),
+                                   pl.Series(FILE, np.repeat(np.array(numbers, dtype=np.uint32), counts)))
+    if not keep.all():
+        frame = frame.filter(pl.Series(keep))
+    return frame.lazy()
+
+
+def file_frames(name: str, reads: list[FileRead], text_columns: dict[int, list[str]], numbered: bool
+                ) -> list[pl.LazyFrame]:
+    """Lazy frames over the prepared files of one input: small CSV files sharing a header
+    together, every other file on its own."""
+    from runner.inputfiles import SMALL
+
+    frames = []
+    together: dict[tuple[tuple[str, ...], tuple[str, ...]], list[int]] = {}
+    for i, read in enumerate(reads):
+        if read.fmt == "csv" and read.size <= SMALL and read.header is not None:
+            together.setdefault((read.header, tuple(text_columns.get(i, []))), []).append(i)
+        else:
+            frames.append(_one_file(name, i, read, text_columns.get(i, []), numbered))
+    for (_, texts), members in together.items():
+        frames.append(_small_files(members, [reads[i] for i in members], list(texts), numbered))
+    return frames
+
+
+def judge_records(name: str, source: FileInput, read: FileRead, stats: InputStats, inspected: bool) -> None:
+    """Count a CSV file's bad records once and treat them as the input says (`on_bad_rows`,
+    `max_bad_rows`); the rows of an input without declared columns are counted here too."""
+    import polars as pl
+
+    from runner.inputfiles import reason_text
+
+    found = read.shape
+    if found is None:
+        return
+    bad = len(found.bad_rows)
+    good = found.rows - len(found.skip)
+    seen = stats.tally(name, bad if inspected else bad + good, 0, bad)
+    if not bad:
+        return
+    expected = len(read.header or ())
+
+    def where(i: int) -> str:
+        reason = reason_text(int(found.bad_code[i]), int(found.bad_fields[i]), expected, read.encoding)
+        return f"{read.label}, row {int(found.bad_rows[i]) + 1}: {reason}"
+
+    if source.on_bad_rows == "fail":
+        more = f" ({bad} bad rows in this file)" if bad > 1 else ""
+        raise BadRows(f"input {name}: {where(0)}{more}; fix the data or set on_bad_rows: quarantine or drop")
+    if source.max_bad_rows is not None and seen > source.max_bad_rows:
+        raise BadRows(f"input {name}: more than max_bad_rows {source.max_bad_rows} bad rows (at least {seen}); "
+                      f"e.g. {where(0)}")
+    if source.on_bad_rows == "quarantine":
+        fields = read.bad_records()
+        header = list(read.header or ())
+        columns: dict[str, list[Any]] = {c: [f[j] if j < len(f) else None for f in fields] for j, c in enumerate(header)}
+        kept = pl.DataFrame({
+            **columns,
+            "reason": [reason_text(int(c), int(n), expected, read.encoding)
+                       for c, n in zip(found.bad_code, found.bad_fields, strict=True)],
+            "source_file": [read.label] * bad,
+            "source_row": (found.bad_rows + 1).tolist(),
+            "input": [name] * bad,
+        }, schema={**{c: pl.String for c in header}, "reason": pl.String, "source_file": pl.String,
+                   "source_row": pl.Int64, "input": pl.String})
+        with stats.lock:
+            stats.rejected.append(kept)
 
 
 def file_frame(root: Path, name: str, source: FileInput, files: FileSet, window: Window, job_tz: str,
                stats: InputStats, empty_schema: dict[str, Any] | None = None) -> pl.LazyFrame:
     """One LazyFrame over all files of an input for a window (inspected when declared).
 
-    With `key:`, the key columns of every file are read and aggregated first
-    (`repeated_keys`: one more pass over the files, reading only those
-    columns), because a key can only be judged unique against the whole
-    window: the rows are read twice, and memory grows with the number of
-    distinct keys, not with the data.
+    Each file is prepared first (`inputfiles.prepare`: where it really is, its
+    encoding, the shape of its CSV records), and its bad records are counted
+    and treated once (`judge_records`). With `key:`, the key columns of every
+    file are read and aggregated first (`repeated_keys`: one more pass over
+    the files, reading only those columns), because a key can only be judged
+    unique against the whole window: the rows are read twice, and memory
+    grows with the number of distinct keys, not with the data.
     """
     import polars as pl
+
+    from runner.fileindex import relative
+    from runner.inputfiles import outside_roots, prepare
 
     columns = declared_columns(source)
     key = list(source.key or [])
@@ -425,46 +577,55 @@ def file_frame(root: Path, name: str, source: FileInput, files: FileSet, window:
         schema = {c: polars_dtype(col.type) for c, col in columns.items()} if columns else (empty_schema or {})
         return pl.LazyFrame(schema=schema)
     stats.limits[name] = (source.max_bad_rows, source.max_bad_fraction)
-    if not columns and not key:
-        frames = [_scan(path, file_format(path, source.format), [], row_index=False) for path in files.paths]
-        return frames[0] if len(frames) == 1 else pl.concat(frames, how="diagonal_relaxed")
-    scans = []
-    for path in files.paths:
-        fmt = file_format(path, source.format)
-        label = _relative(root, path)
-        lf = _scan(path, fmt, [], row_index=False)
-        try:
-            header = lf.collect_schema()
-        except pl.exceptions.PolarsError as exc:
-            raise InputError(f"input {name}: cannot read {label}: {str(exc).splitlines()[0]}") from None
-        missing = [c for c in dict.fromkeys([*columns, *key]) if c not in header]
+    roots = outside_roots(root, source.allow_outside)
+    folders: dict[str, str] = {}
+    reads = [prepare(name, path, relative(root, path), file_format(path, source.format), source.encoding, roots,
+                     folders) for path in files.paths]
+    inspected = bool(columns or key)
+    wanted = list(dict.fromkeys([*columns, *key]))
+    text_columns: dict[int, list[str]] = {}
+    for i, read in enumerate(reads):
+        if not inspected:
+            continue
+        if read.header is not None:
+            header: list[str] = list(read.header)
+        else:
+            try:
+                header = _scan(read.source(), read.fmt, [], row_index=False).collect_schema().names()
+            except pl.exceptions.PolarsError as exc:
+                raise _unreadable(name, read, exc) from None
+        missing = [c for c in wanted if c not in header]
         if missing:
-            raise InputError(f"input {name}: {label} has no column(s) {', '.join(missing)} "
-                             f"(declared in schema or key; it has {', '.join(header.names())})")
-        text_cols = [c for c in columns if c in header] if fmt in ("csv", "ndjson") else []
-        lf = _scan(path, fmt, text_cols, row_index=True)
-        if source.extra == "drop":
-            lf = lf.select(list(dict.fromkeys([ROW, *columns, *key])))
+            raise InputError(f"input {name}: {read.label} has no column(s) {', '.join(missing)} "
+                             f"(declared in schema or key; it has {', '.join(header)})")
+        if read.fmt in ("csv", "ndjson"):
+            text_columns[i] = [c for c in columns if c in header]
+    for read in reads:
+        judge_records(name, source, read, stats, inspected)
+    frames = file_frames(name, reads, text_columns, inspected)
+    lf = frames[0] if len(frames) == 1 else pl.concat(frames, how="diagonal_relaxed")
+    if not inspected:
+        return lf
+    if source.extra == "drop":
+        lf = lf.select([ROW, FILE, *wanted])
+    try:
         raw = lf.collect_schema()
-        scans.append((label, lf, raw, _samples(lf, columns, raw)))
+    except pl.exceptions.PolarsError as exc:
+        raise InputError(f"input {name}: cannot read its files ({reads[0].label} ...): "
+                         f"{str(exc).splitlines()[0]}") from None
+    samples = _samples(lf, columns, raw)
+    labels = [read.label for read in reads]
     repeats = None
     if key:
-        repeats = repeated_keys([key_frame(lf, i, key, columns, raw, source.time_column, window, job_tz, samples)
-                                 for i, (_, lf, raw, samples) in enumerate(scans)], len(key))
+        repeats = repeated_keys([key_frame(lf, key, columns, raw, source.time_column, window, job_tz, samples)],
+                                len(key))
         if repeats.height and source.on_bad_rows == "fail":
             stats.tally(name, 0, 0, int(repeats[_COPIES].sum()) - repeats.height)
-            raise key_problem(name, key, repeats, [label for label, _, _, _ in scans])
-    frames = []
-    for i, (label, lf, raw_schema, samples) in enumerate(scans):
-        inspector = BatchInspector(name, label, source, columns, raw_schema, window, job_tz, stats, repeats, i,
-                                   samples)
-        out_schema = inspector.output_schema(raw_schema)
-        frames.append(inspector.stage(lf).map_batches(inspector, schema=out_schema, streamable=True,
-                                                      validate_output_schema=False))
+            raise key_problem(name, key, repeats, labels)
+    inspector = BatchInspector(name, labels, source, columns, raw, window, job_tz, stats, repeats, samples)
     stats.counted = True
-    if len(frames) == 1:
-        return frames[0]
-    return pl.concat(frames, how="diagonal_relaxed")
+    return inspector.stage(lf).map_batches(inspector, schema=inspector.output_schema(raw), streamable=True,
+                                           validate_output_schema=False)
 
 
 SAMPLE = 500  # rows of each text timestamp column read to pick its fast cast
@@ -571,15 +732,15 @@ def database_frame(root: Path, name: str, source: DatabaseInput, window: Window,
         if missing:
             raise InputError(f"input {name}: the query returns no column(s) {', '.join(missing)}")
         label = f"{_mask(url)} {source.table or 'query'}"
-        rows = frame.with_row_index(ROW)
+        rows = frame.with_row_index(ROW).with_columns(pl.lit(0, dtype=pl.UInt32).alias(FILE))
         repeats = None
         if key:
-            repeats = repeated_keys([key_frame(rows.lazy(), 0, key, columns, rows.schema, source.time_column,
+            repeats = repeated_keys([key_frame(rows.lazy(), key, columns, rows.schema, source.time_column,
                                                window, job_tz)], len(key))
             if repeats.height:
                 stats.tally(name, 0, 0, int(repeats[_COPIES].sum()) - repeats.height)
                 raise key_problem(name, key, repeats, [label])
-        inspector = BatchInspector(name, label, source, columns, rows.schema, window, job_tz, stats, repeats)
+        inspector = BatchInspector(name, [label], source, columns, rows.schema, window, job_tz, stats, repeats)
         frame = inspector(inspector.stage(rows.lazy()).collect())
         stats.counted = True
     else:

@@ -115,6 +115,20 @@ class Column(_Model):
         return value
 
 
+def text_encoding(name: str) -> str:
+    """A declared encoding, checked to be a text encoding Python's codecs know."""
+    import codecs
+
+    try:
+        info = codecs.lookup(name.strip())
+    except LookupError:
+        raise ValueError(f"unknown encoding {name!r}; use a name Python's codecs know, e.g. utf-8, latin-1, "
+                         "cp1252, utf-16") from None
+    if not getattr(info, "_is_text_encoding", True):
+        raise ValueError(f"{name!r} is not a text encoding")
+    return name.strip()
+
+
 def _column(value: Any) -> Any:
     if isinstance(value, str):
         return {"type": value}
@@ -160,6 +174,14 @@ class FileInput(_Model):
     on_bad_rows: Literal["fail", "quarantine", "drop"] = "fail"
     max_bad_rows: int | None = Field(default=None, ge=0)
     max_bad_fraction: Fraction | None = Field(default=None, description="e.g. 2% or 0.02")
+    encoding: Text | None = Field(
+        default=None, description="text encoding of CSV and NDJSON files (default utf-8, a byte order mark "
+                                  "accepted), e.g. latin-1, cp1252, utf-16"
+    )
+    allow_outside: list[Text] | None = Field(
+        default=None, description="absolute folders outside the workspace whose files this input may read "
+                                  "(symlinks are followed, then checked)"
+    )
 
     @field_validator("files")
     @classmethod
@@ -175,6 +197,20 @@ class FileInput(_Model):
                 raise ValueError(f"cannot tell the format of {_short(self.files)!r} from its name; add "
                                  "format: csv, parquet or ndjson")
         return self
+
+    @field_validator("encoding")
+    @classmethod
+    def _encoding(cls, value: str | None) -> str | None:
+        return None if value is None else text_encoding(value)
+
+    @field_validator("allow_outside")
+    @classmethod
+    def _absolute(cls, value: list[str] | None) -> list[str] | None:
+        for folder in value or []:
+            if not Path(folder).is_absolute():
+                raise ValueError(f"{folder!r} is not an absolute path; allow_outside lists folders outside "
+                                 "the workspace, e.g. /srv/feeds")
+        return value
 
 
 class JobInput(_Model):

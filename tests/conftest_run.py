@@ -52,6 +52,12 @@ def backfill(root: Path, *jobs: str, lo: str, hi: str, extra: tuple[str, ...] = 
                     *extra, expect=expect)
 
 
+def only_window(root: Path, job: str, lo: str, hi: str) -> dict[str, Any]:
+    """Backfill a range holding exactly one window of `job`; that window's entry of the report."""
+    [window] = backfill(root, job, lo=lo, hi=hi, expect=None)["windows"]
+    return window
+
+
 def statuses(report: dict[str, Any], job: str | None = None) -> dict[str, int]:
     """How many windows of a backfill report ended in each status."""
     out: dict[str, int] = {}

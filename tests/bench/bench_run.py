@@ -1,6 +1,6 @@
 """Benchmarks for running windows (run by hand; not collected by pytest).
 
-    python tests/bench/bench_run.py big   [--rows 45000000] [--repeats 3]
+    python tests/bench/bench_run.py big   [--rows 45000000] [--repeats 3] [--compare DIR] [--cold]
     python tests/bench/bench_run.py small [--hours 8760] [--sample 40]
 
 `big`: one large window, a CSV of rides grouped by two low-cardinality
@@ -8,7 +8,12 @@ columns into Parquet. Whole processes side by side, best of N, wall time and
 peak resident memory (from wait4's rusage of each child):
   - a hand-written polars script (lazy API, streaming engine, sink to file),
   - `weir run` on the same file and query,
-  - a DuckDB script and a pandas script for reference.
+  - a DuckDB script and a pandas script for reference;
+  - with --compare DIR, also `weir run` from another checkout (e.g. the main
+    branch), to measure what a change costs side by side.
+weir remembers input files it found well-formed (state/input-checks.sqlite),
+so from the second round on `weir run` reads a file already checked; with
+--cold that file is removed before every round: every run checks the CSV.
 
 `small`: a year of hourly windows with small inputs. `weir backfill` over all
 of them (default workers) against one process per window (what a cron line
@@ -48,6 +53,16 @@ def measure(cmd: list[str], cwd: Path | None = None, env: dict | None = None) ->
     if os.waitstatus_to_exitcode(status) != 0:
         raise SystemExit(f"{' '.join(cmd)} failed:\n{err}")
     return wall, usage.ru_maxrss / 1024
+
+
+def checkout_env(checkout: Path, ledger: Path | None = None) -> dict[str, str]:
+    """The environment for running weir from `checkout` (first on PYTHONPATH, before what the
+    caller's PYTHONPATH holds); `ledger`, when given, is that run's own SQLite ledger: checkouts
+    may keep ledgers of different versions."""
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(p for p in [str(checkout), os.environ.get("PYTHONPATH")] if p))
+    if ledger is not None:
+        env["WEIR_LEDGER"] = f"sqlite:///{ledger}"
+    return env
 
 
 def machine() -> str:
@@ -126,7 +141,8 @@ output: {path: "out/{start:%Y-%m-%d}.parquet"}
 """
 
 
-def bench_big(base: Path, rows: int, repeats: int, skip_pandas: bool) -> None:
+def bench_big(base: Path, rows: int, repeats: int, skip_pandas: bool, compare: Path | None = None,
+              cold: bool = False) -> None:
     data = base / "big" / "data" / "rides.csv"
     print(f"generating {rows:,} rows ...", flush=True)
     make_big_csv(data, rows)
@@ -137,21 +153,31 @@ def bench_big(base: Path, rows: int, repeats: int, skip_pandas: bool) -> None:
     scripts = {"hand": HAND, "duckdb": DUCK, "pandas": PANDAS}
     for name, text in scripts.items():  # file names must not shadow the modules they import
         (base / f"bench_{name}.py").write_text(textwrap.dedent(text))
+    here = Path(__file__).resolve().parents[2]
     runs = {
         "polars script (streaming)": [PY, str(base / "bench_hand.py"), str(data), str(base / "hand.parquet")],
         "weir run": [*WEIR, "-C", str(ws), "run", "rides_big", "--window", "2026-03-22", "--force"],
         "duckdb script": [PY, str(base / "bench_duckdb.py"), str(data), str(base / "duck.parquet")],
     }
+    checkouts = {"weir run": here}
+    if compare is not None:
+        runs[f"weir run ({compare})"] = runs["weir run"]
+        checkouts[f"weir run ({compare})"] = compare.resolve()
     if not skip_pandas:
         runs["pandas script"] = [PY, str(base / "bench_pandas.py"), str(data), str(base / "pandas.parquet")]
     results: dict[str, list[tuple[float, float]]] = {k: [] for k in runs}
     for i in range(repeats):  # interleaved, so load on the machine hits every tool alike
         for name, cmd in runs.items():
-            env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parents[2]))
-            results[name].append(measure(cmd, env=env))
+            # run from `base`, so that no `runner` folder in the current one shadows the checkout's
+            checkout = checkouts.get(name, here)
+            env = checkout_env(checkout, None if checkout == here else base / "compare-ledger.sqlite")
+            if cold:
+                (ws / "state" / "input-checks.sqlite").unlink(missing_ok=True)
+            results[name].append(measure(cmd, cwd=base, env=env))
             print(f"  round {i + 1}: {name}: {results[name][-1][0]:.2f}s {results[name][-1][1]:.0f} MB", flush=True)
     base_wall = min(w for w, _ in results["polars script (streaming)"])
-    print(f"\nOne window over {size_gb:.2f} GB of CSV ({rows:,} rows); {machine()}; best of {repeats}")
+    print(f"\nOne window over {size_gb:.2f} GB of CSV ({rows:,} rows); {machine()}; best of {repeats}"
+          f"{'; every input check from scratch (--cold)' if cold else ''}")
     print("| program | wall | vs polars script | peak RSS |")
     print("| --- | ---: | ---: | ---: |")
     for name, vals in results.items():
@@ -250,10 +276,12 @@ def main() -> None:
     parser.add_argument("--hours", type=int, default=8760)
     parser.add_argument("--sample", type=int, default=40)
     parser.add_argument("--skip-pandas", action="store_true")
+    parser.add_argument("--compare", type=Path, help="another checkout whose `weir run` to time beside this one")
+    parser.add_argument("--cold", action="store_true", help="forget which input files weir found well-formed")
     args = parser.parse_args()
     args.dir.mkdir(parents=True, exist_ok=True)
     if args.what == "big":
-        bench_big(args.dir, args.rows, args.repeats, args.skip_pandas)
+        bench_big(args.dir, args.rows, args.repeats, args.skip_pandas, args.compare, args.cold)
     else:
         bench_small(args.dir, args.hours, args.sample)
 
