@@ -39,6 +39,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from runner.errors import WeirError
+from runner.paths import INPUT_CHECKS
 
 if TYPE_CHECKING:
     import numpy as np
@@ -57,7 +58,7 @@ CHUNK = 1 << 19  # bytes looked at per vectorized step (its temporary arrays sta
 SMALL = 64 << 10  # files up to this size are read whole, and small CSV files read together
 EAGER = 64 << 20  # NDJSON files up to this size are read at once, so that a syntax error can be located
 REMEMBER = 1 << 20  # CSV files from this size on are remembered (state/input-checks.sqlite) once found clean
-VERDICTS = "input-checks.sqlite"
+VERDICTS = os.path.basename(INPUT_CHECKS)
 CHECK_VERSION = 1  # raised when the record check changes: remembered verdicts no longer count
 
 # reasons a CSV record is bad, most telling first

@@ -25,9 +25,12 @@ LEDGER = "state/ledger.sqlite"  # the default ledger
 LOGS = "state/logs"  # failed windows' logs
 TICK_GATE = "state/tick-gate.json"  # the idle tick's gate
 REPORT = "state/report.html"  # weir report's default page
+INPUT_CHECKS = "state/input-checks.sqlite"  # large CSV inputs found well-formed, by identity
 OWNED = {
     LEDGER: "the ledger", f"{LEDGER}-wal": "the ledger's write-ahead log", f"{LEDGER}-shm": "the ledger's shared memory",
     f"{LEDGER}-journal": "the ledger's journal", TICK_GATE: "the idle tick's gate", REPORT: "the report",
+    INPUT_CHECKS: "the record of checked input files", f"{INPUT_CHECKS}-wal": "that record's write-ahead log",
+    f"{INPUT_CHECKS}-shm": "that record's shared memory", f"{INPUT_CHECKS}-journal": "that record's journal",
     "state/README.md": "the state folder's README", "state/.gitignore": "the state folder's .gitignore",
 }
 OWNED_FOLDERS = {LOGS: "the logs", "jobs": "the job files"}

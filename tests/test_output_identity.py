@@ -205,6 +205,7 @@ def test_checking_outputs_renders_a_plain_template_vectorized_not_window_by_wind
     ("state/logs/{start:%Y-%m-%d}.csv", "the logs"),
     ("state/tick-gate.json", "the idle tick's gate"),
     ("state/report.html", "the report"),
+    ("state/input-checks.sqlite", "the record of checked input files"),
     ("jobs/{start:%Y-%m-%d}.yaml", "the job files"),
 ])
 def test_an_output_onto_a_file_weir_keeps_is_refused(tmp_path: Path, path: str, what: str):
