@@ -246,13 +246,16 @@ class _Supervisor:
         """One round: start what can start, wait for news, act on it. False when everything is over."""
         if not self.stopping and self.should_stop is not None and self.should_stop():
             self._stop()
-        self._take_ready()
-        self._take_due_retries()
-        self._dispatch()
+        while True:
+            self._take_ready()
+            self._take_due_retries()
+            self._dispatch()
+            if not self.ready or len(self.queue) >= self._backlog:
+                break  # every ready task is queued, or the workers have enough to do for now
         if not (self.flights or self.queue or self.delayed or self.ready):
             return False
         now = time.monotonic()
-        timeout = 0.0 if self.ready and len(self.queue) < self._backlog else POLL
+        timeout = POLL
         for w in self.workers:
             if w.current is not None:
                 timeout = min(timeout, w.started + self._limit(w.current) - now)

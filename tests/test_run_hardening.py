@@ -303,6 +303,27 @@ def test_a_paused_runner_whose_claim_was_taken_over_neither_swaps_nor_records_do
     assert rows(root, "SELECT * FROM weir_claims") == []
 
 
+def test_a_runner_whose_claim_is_taken_over_stops_that_window(tmp_path: Path):
+    """Hardening item 3 (and issue 10): the supervisor's next renewal sees the claim held by another
+    runner and stops the worker, instead of letting it compute a result that would be thrown away."""
+    import sqlite3
+
+    root = trouble_ws(tmp_path)
+    trouble(root, "wait", 8)  # the step would wait for ever
+    runner = spawn(root, "run", "rides_hourly", "--window", window_id(8), "--json")
+    assert wait_until(lambda: rows(root, "SELECT * FROM weir_claims WHERE fence > 0") or runner.poll() is not None)
+    con = sqlite3.connect(root / "state" / "ledger.sqlite", timeout=30)
+    with con:  # another runner takes the window over (as after a lapse), with a newer fencing number
+        con.execute("UPDATE weir_claims SET owner = 'depot-server:4242:1', fence = fence + 1000")
+    con.close()
+    code, out, err = finish(runner)
+    assert code == 0, err
+    outcome = json.loads(out)
+    assert outcome["status"] == "claimed" and "claim lost" in outcome["reason"], outcome
+    assert [r[1] for r in history(root, 8)] == ["abandoned"]
+    assert rows(root, "SELECT owner FROM weir_claims")[0][0] == "depot-server:4242:1"  # not ours to release
+
+
 # ---------------------------------------------------------------- item 13: one rule for gone holders
 
 
@@ -414,3 +435,33 @@ def test_ctrl_c_stops_every_worker_without_tracebacks_and_exits_130(tmp_path: Pa
     # a later run resumes: the interrupted windows run, the rest are current
     (root / "state" / "trouble").unlink()
     assert set(statuses(backfill(root, "rides_hourly", lo=LO, hi=HI))) <= {"done", "skipped"}
+
+
+# ---------------------------------------------------------------- the ledger
+
+
+def test_a_ledger_of_schema_1_gains_fencing_numbers_and_keeps_its_claims(tmp_path: Path):
+    """Claims gained a fencing number (schema 2); a ledger written before is upgraded in place."""
+    import sqlite3
+
+    from runner.ledger import SCHEMA_VERSION, Ledger
+
+    path = tmp_path / "ledger.sqlite"
+    con = sqlite3.connect(path)  # the schema 1 tables as the previous weir created them
+    with con:
+        con.execute("CREATE TABLE weir_meta (key VARCHAR(64) PRIMARY KEY, value TEXT NOT NULL)")
+        con.execute("INSERT INTO weir_meta VALUES ('schema_version', '1')")
+        con.execute("CREATE TABLE weir_claims (job VARCHAR(200), window_key VARCHAR(32), owner VARCHAR(200) NOT NULL, "
+                    "expires FLOAT NOT NULL, PRIMARY KEY (job, window_key))")
+        con.execute("INSERT INTO weir_claims VALUES ('rides_hourly', '2026-03-28T05:00:00Z', 'depot-server:4242:1', "
+                    "4102444800.0)")
+    con.close()
+    Ledger(f"sqlite:///{path}").dispose()
+    con = sqlite3.connect(path)
+    try:
+        assert SCHEMA_VERSION == 2
+        assert con.execute("SELECT value FROM weir_meta WHERE key = 'schema_version'").fetchone() == ("2",)
+        assert con.execute("SELECT owner, fence FROM weir_claims").fetchall() == [("depot-server:4242:1", 0)]
+    finally:
+        con.close()
+
