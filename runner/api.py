@@ -136,10 +136,13 @@ def find_window(ws: Workspace, job: str, window_id: str):
 
 def run(root: Path | str, job: str, window_id: str, ledger_url: str | None = None, force: bool = False,
         at: datetime | None = None):
-    """Run one window of `job` (skipped when current unless `force`). Returns an Outcome."""
-    from runner.execute import Outcome, RunContext, run_window
+    """Run one window of `job` (skipped when current unless `force`) in a worker process. Returns an Outcome."""
+    from runner.execute import Outcome, RunContext
+    from runner.planner import Task
+    from runner.pool import run_tasks, warm_up
     from runner.sinks import sweep_temporaries
 
+    warm_up()
     ws = load_workspace(root, thorough=False)
     ws.job(job)
     window = find_window(ws, job, window_id)
@@ -149,7 +152,7 @@ def run(root: Path | str, job: str, window_id: str, ledger_url: str | None = Non
                        f"not due until {format_instant(window.end + cad.settle, cad.tz)}")
     ledger = open_ledger(ws.root, ledger_url)
     sweep_temporaries(ws, at or window.end)
-    return run_window(RunContext(ws=ws, ledger=ledger), job, window, force=force)
+    return run_tasks([Task(job, window)], RunContext(ws=ws, ledger=ledger), 1, force=force)[0]
 
 
 @dataclass
@@ -198,8 +201,9 @@ def backfill(root: Path | str, jobs: list[str], lo: str | None, hi: str | None, 
     `on_plan(tasks, replaced)` is called before anything runs (so a caller can
     warn or confirm); `on_outcome(task, outcome)` after each window.
     """
-    from runner.pool import Settings, default_workers, run_tasks
+    from runner.pool import default_workers, run_tasks, warm_up
 
+    warm_up()
     ws = load_workspace(root, thorough=False)
     if not jobs:
         raise UsageError("name at least one job to backfill (see `weir check` for the list)")
@@ -217,9 +221,8 @@ def backfill(root: Path | str, jobs: list[str], lo: str | None, hi: str | None, 
     from runner.sinks import sweep_temporaries
 
     sweep_temporaries(ws, at)
-    settings = Settings(root=ws.root, ledger_url=ledger.url, force=force)
-    outcomes = run_tasks(plan.tasks, settings, workers or default_workers(), on_outcome, should_stop,
-                         context=RunContext(ws=ws, ledger=ledger))
+    outcomes = run_tasks(plan.tasks, RunContext(ws=ws, ledger=ledger), workers or default_workers(), force=force,
+                         on_outcome=on_outcome, should_stop=should_stop)
     return BackfillResult(outcomes, plan.not_due, replaced)
 
 
@@ -305,7 +308,7 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
     from runner.execute import RunContext, producer_windows
     from runner.ledger import HeldLock, owner_id
     from runner.planner import job_plans, tasks_for
-    from runner.pool import Settings, run_tasks
+    from runner.pool import run_tasks
     from runner.sinks import sweep_temporaries
 
     ws = ws or load_workspace(root, thorough=False)
@@ -316,7 +319,7 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
     owner = owner_id()
     idle = None
     try:
-        with HeldLock(ledger, "tick", owner) as lock:
+        with HeldLock(ledger, "tick", owner, ws.settings.lease.total_seconds()) as lock:
             if not lock.acquired:
                 return TickResult(ran=False, holder=lock.holder())
             sweep_temporaries(ws, at)
@@ -334,9 +337,8 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
                     if any((pjob, pw.key) in runnable for _, pjob, pw in producer_windows(ws, w.job, w.window)):
                         items.append(w)
             tasks = tasks_for(ws, _dependency_sorted(ws, items))
-            settings = Settings(root=ws.root, ledger_url=ledger.url)
-            outcomes = run_tasks(tasks, settings, workers or 1, on_outcome, should_stop,
-                                 context=RunContext(ws=ws, ledger=ledger, owner=owner))
+            outcomes = run_tasks(tasks, RunContext(ws=ws, ledger=ledger, owner=owner), workers or 1,
+                                 on_outcome=on_outcome, should_stop=should_stop, leases=lock.leases)
             return TickResult(True, None, outcomes, {p.job: p.held_back for p in plans if p.held_back},
                               {p.job: len(p.waiting) for p in plans if p.waiting}, dict(assessed.unplanned))
     finally:

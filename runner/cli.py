@@ -7,6 +7,7 @@ traceback (set WEIR_DEBUG=1 to see one for an internal error).
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import sys
@@ -37,6 +38,30 @@ def _now(at: str | None) -> datetime:
         return parse_instant(at, UTC)
     except BadValue as exc:
         raise UsageError(f"--at: {exc} (without an offset it is read as UTC)") from None
+
+
+@contextlib.contextmanager
+def _stoppable():
+    """Let SIGTERM stop a running command the way Ctrl-C does: workers stopped, runs recorded
+    abandoned, claims and the tick lock released, one line, exit status 128 + the signal."""
+    import signal
+
+    from runner.errors import Interrupted
+
+    def stop(signum: int, _frame: Any) -> None:
+        raise Interrupted(signum)
+
+    try:
+        previous = signal.signal(signal.SIGTERM, stop)
+    except ValueError:  # not the main thread: leave signals alone
+        yield
+        return
+    try:
+        yield
+    except KeyboardInterrupt:
+        raise Interrupted(signal.SIGINT) from None
+    finally:
+        signal.signal(signal.SIGTERM, previous)
 
 
 def _emit_json(data: Any) -> None:
@@ -176,7 +201,8 @@ def run(obj: Context, job: str, window_id: str, force: bool, as_json: bool) -> N
 
     if force and not as_json:
         click.echo(f"--force: the output of {job} {window_id} will be replaced if it exists.", err=True)
-    outcome = api.run(obj.root, job, window_id, obj.ledger, force=force)
+    with _stoppable():
+        outcome = api.run(obj.root, job, window_id, obj.ledger, force=force)
     if as_json:
         _emit_json(outcome.as_dict())
     else:
@@ -248,8 +274,9 @@ def backfill(obj: Context, jobs: tuple[str, ...], lo: str | None, hi: str | None
         return True
 
     try:
-        result = api.backfill(obj.root, list(jobs), lo, hi, now, obj.ledger, downstream, workers, force,
-                              on_outcome=progress.update, on_plan=on_plan)
+        with _stoppable():
+            result = api.backfill(obj.root, list(jobs), lo, hi, now, obj.ledger, downstream, workers, force,
+                                  on_outcome=progress.update, on_plan=on_plan)
     finally:
         progress.stop()
     if as_json:
@@ -452,7 +479,8 @@ def tick(obj: Context, at: str | None, workers: int | None, as_json: bool) -> No
         return
     from runner import api
 
-    result = api.tick(obj.root, now, obj.ledger, workers)
+    with _stoppable():
+        result = api.tick(obj.root, now, obj.ledger, workers)
     if as_json:
         _emit_json({"ran": result.ran, "holder": result.holder, "counts": result.counts(),
                     "windows": [o.as_dict() for o in result.outcomes], "remaining": result.held_back,
@@ -735,8 +763,9 @@ def demo(obj: Context, workers: int | None) -> None:
 
     click.echo("writing the demo's landing data into state/landing/ ...")
     try:
-        summary, result, at = api.demo(obj.root, datetime.now(UTC), obj.ledger, workers,
-                                       on_outcome=progress.update, on_plan=on_plan)
+        with _stoppable():
+            summary, result, at = api.demo(obj.root, datetime.now(UTC), obj.ledger, workers,
+                                           on_outcome=progress.update, on_plan=on_plan)
     finally:
         progress.stop()
     click.echo(f"landing: {summary.rides} rides ({summary.bad_rows} bad rows, {summary.late_files} late files), "
@@ -805,7 +834,7 @@ def report(obj: Context, out: Path | None, metrics: Path | None, at: str | None,
 
 def main(argv: list[str] | None = None) -> None:
     """Entry point: run the CLI, turning user errors into one line and an exit status."""
-    from runner.errors import SpecProblems, WeirError
+    from runner.errors import Interrupted, SpecProblems, WeirError
 
     try:
         cli.main(args=argv, prog_name="weir", standalone_mode=False)
@@ -826,6 +855,12 @@ def main(argv: list[str] | None = None) -> None:
     except WeirError as exc:
         click.echo(f"weir: {exc}", err=True)
         sys.exit(exc.exit_code)
+    except Interrupted as exc:
+        import signal
+
+        click.echo(f"weir: interrupted by {signal.Signals(exc.signum).name}: windows being run were stopped, "
+                   "their runs recorded abandoned and this run's claims released", err=True)
+        sys.exit(128 + exc.signum)
     except KeyboardInterrupt:
         click.echo("interrupted", err=True)
         sys.exit(130)

@@ -55,3 +55,11 @@ class RunFailed(WeirError):
     """At least one window failed; the details are in the ledger and logs."""
 
     exit_code = 1
+
+
+class Interrupted(BaseException):
+    """A signal (SIGINT from Ctrl-C, SIGTERM) stopped a running command; the CLI exits with 128 + it."""
+
+    def __init__(self, signum: int):
+        super().__init__(signum)
+        self.signum = signum

@@ -1,19 +1,23 @@
-"""One window end to end: the only place that sequences effects.
+"""One attempt at one window, end to end: the only place that sequences effects.
 
-    claim -> find inputs -> fingerprint -> skip if current -> record start
-    -> read, steps, write to a temporary file -> checks -> swap -> record
+    find inputs -> fingerprint -> claim, skip if current, record start
+    -> read, steps, write to a temporary file -> checks
+    -> confirm the claim -> swap -> record done (only while still holding the claim)
 
-A window whose inputs or producers are not there yet is `waiting` (nothing is
-recorded). A failure records its error in the ledger and its traceback in
-`state/logs/JOB/WINDOW.log`, leaves the previous output in place, and is
-retried `retries:` times with a doubling delay.
+`run_attempt` is the one entry point: a local worker process runs it, and so
+would any other executor. A window whose inputs or producers are not there
+yet is `waiting` (nothing is recorded). A failure records its error in the
+ledger and its traceback in `state/logs/JOB/WINDOW.log`, and leaves the
+previous output in place; the supervisor (runner.pool) retries it up to
+`retries:` times with a doubling delay, holding the claim in between. A run
+whose claim another runner took over (its lease lapsed) neither swaps its
+output nor records done.
 """
 
 from __future__ import annotations
 
 import contextlib
 import subprocess
-import threading
 import time
 import traceback
 from collections.abc import Callable
@@ -32,7 +36,6 @@ from runner.spec import DatabaseInput, FileInput, JobInput
 from runner.windows import Window
 from runner.workspace import Workspace
 
-CLAIM_TTL = 120.0
 # Below this much input a window runs in memory in one go (no streaming engine
 # start-up, no reading the result back); above it, polars streams to the file.
 SMALL_INPUT_BYTES = 64 * 1024 * 1024
@@ -44,7 +47,7 @@ class Outcome:
 
     job: str
     window: str
-    status: str  # done | failed | skipped | waiting | claimed
+    status: str  # done | failed | skipped | waiting | claimed | not started
     reason: str = ""
     run_id: int | None = None
     seconds: float = 0.0
@@ -56,60 +59,43 @@ class Outcome:
         return dict(self.__dict__)
 
 
-class ClaimKeeper:
-    """Renews the claims this process holds, from one background thread."""
-
-    def __init__(self, ledger: Ledger, owner: str, ttl: float = CLAIM_TTL):
-        self.ledger, self.owner, self.ttl = ledger, owner, ttl
-        self.held: set[tuple[str, str]] = set()
-        self._lock = threading.Lock()
-        self._stop = threading.Event()
-        self._thread: threading.Thread | None = None
-
-    def take(self, job: str, key: str) -> bool:
-        if not self.ledger.claim(job, key, self.owner, self.ttl):
-            return False
-        self.hold(job, key)
-        return True
-
-    def hold(self, job: str, key: str) -> None:
-        """Keep renewing a claim this process has already taken."""
-        with self._lock:
-            self.held.add((job, key))
-            if self._thread is None:
-                self._thread = threading.Thread(target=self._loop, name="weir-claims", daemon=True)
-                self._thread.start()
-
-    def drop(self, job: str, key: str) -> None:
-        with self._lock:
-            self.held.discard((job, key))
-
-    def _loop(self) -> None:
-        while not self._stop.wait(self.ttl / 3):
-            with self._lock:
-                held = list(self.held)
-            for job, key in held:
-                # a missed renewal is retried next round
-                with contextlib.suppress(Exception):
-                    self.ledger.renew(job, key, self.owner, self.ttl)
-
-    def stop(self) -> None:
-        self._stop.set()
-
-
 @dataclass
 class RunContext:
-    """What running windows needs: the workspace, the ledger and who we are."""
+    """What running windows needs: the workspace, the ledger and who holds the claims.
+
+    `owner` is the supervising process's identity: workers take claims in its
+    name, and it renews them (`leases.Leases`).
+    """
 
     ws: Workspace
     ledger: Ledger
     owner: str = field(default_factory=owner_id)
-    sleep: Callable[[float], None] = time.sleep
-    claims: ClaimKeeper | None = None
 
-    def __post_init__(self) -> None:
-        if self.claims is None:
-            self.claims = ClaimKeeper(self.ledger, self.owner)
+    @property
+    def lease(self) -> float:
+        return self.ws.settings.lease.total_seconds()
+
+
+@dataclass(frozen=True)
+class Attempt:
+    """One attempt at one window: what a worker is handed.
+
+    `fence` is the claim an earlier attempt took and the supervisor kept (a
+    retry); None means take the claim first.
+    """
+
+    job: str
+    window_key: str
+    number: int = 1
+    force: bool = False
+    fence: int | None = None
+
+
+class ClaimLost(Exception):
+    """Another runner took this window's claim over; the run must not swap or record done."""
+
+
+LOST = "claim lost: another runner took this window over (this run's lease lapsed); its result was discarded"
 
 
 @lru_cache(maxsize=8)
@@ -222,72 +208,47 @@ def prepare(ctx: RunContext, job: str, window: Window, database_entries: list[di
 # ---------------------------------------------------------------- running
 
 
-def precheck(ctx: RunContext, job: str, window: Window) -> tuple[bool, Prepared | None]:
-    """(current, prepared): whether the window is done with the fingerprint it would have now,
-    and what was found on the way (for `run_window` to reuse).
+def precheck(ctx: RunContext, job: str, window: Window) -> bool:
+    """Whether the window is done with the fingerprint it would have now.
 
-    A cheap check without a claim; `run_window` compares again under its claim.
+    A cheap check without a claim, so that a supervisor skips current windows
+    without handing them to a worker; `run_attempt` compares again under its claim.
     """
     from runner.errors import WeirError
 
     if any(isinstance(s, DatabaseInput) for s in ctx.ws.jobs[job].spec.inputs.values()):
-        return False, None  # the rows must be read to know
+        return False  # the rows must be read to know
     try:
         prep = prepare(ctx, job, window)
     except (WeirError, OSError):
-        return False, None
+        return False
     current = ctx.ledger.state_row(job, window.key)
     if current is None or current["state"] != "done" or current.get("output_state"):
-        return False, prep
-    return prep.waiting is None and prep.fingerprint == current["fingerprint"], prep
+        return False
+    return prep.waiting is None and prep.fingerprint == current["fingerprint"]
 
 
-def run_window(ctx: RunContext, job: str, window: Window, force: bool = False,
-               prepared: Prepared | None = None) -> Outcome:
-    """Run one window unless it is current, claimed elsewhere or waiting; retry on failure.
+def run_attempt(ctx: RunContext, attempt: Attempt,
+                on_claim: Callable[[int, int, str | None], None] | None = None) -> Outcome:
+    """Run one attempt at a window; the entry point of every worker.
 
-    `prepared` (from `precheck`, moments before) saves finding the inputs twice on
-    the first attempt; retries always look again.
-    """
-    assert ctx.claims is not None
-    started = time.perf_counter()
-    held = False
-    outcome = Outcome(job, window.id, "failed", "not started")
-    try:
-        retries = ctx.ws.jobs[job].spec.retries
-        delay = ctx.ws.jobs[job].spec.retry_delay.total_seconds()
-        attempt = 0
-        while True:
-            attempt += 1
-            outcome, took = _attempt(ctx, job, window, force, attempt, prepared if attempt == 1 else None, held)
-            held = held or took
-            if outcome.status in ("done", "skipped", "waiting", "claimed") or attempt > retries:
-                break
-            ctx.sleep(delay * (2 ** (attempt - 1)))
-        outcome.seconds = time.perf_counter() - started
-        return outcome
-    finally:
-        if held:
-            ctx.claims.drop(job, window.key)
-            if outcome.status != "done":  # a done run's finish_run released the claim
-                ctx.ledger.release(job, window.key, ctx.owner)
-
-
-def _attempt(ctx: RunContext, job: str, window: Window, force: bool, attempt: int,
-             prepared: Prepared | None, held: bool) -> tuple[Outcome, bool]:
-    """One attempt; returns its outcome and whether it took the window's claim.
-
-    The first attempt finds the inputs and fingerprint (reads only), then in one
-    ledger transaction skips a current window or takes the claim and records
-    the run. Later attempts already hold the claim.
+    Finds the inputs and fingerprint (reads only), then in one ledger
+    transaction takes the claim and skips a current window or records the run
+    (a retry already holds the claim: `attempt.fence`). `on_claim(fence,
+    run_id, fingerprint)` is told as soon as the claim is held, so that the
+    supervisor can renew it and record a failure if this process dies. On a
+    failure that will be retried, the claim stays held; otherwise it is released.
     """
     from runner.sources import InputStats, database_frame
 
     ws = ctx.ws
+    job, force = attempt.job, attempt.force
+    window = ws.cadence(job).window(_key_to_instant(attempt.window_key))
     spec = ws.jobs[job].spec
     stats = InputStats()
-    run_id = None
-    took = False
+    run_id: int | None = None
+    fence = attempt.fence
+    fingerprint: str | None = None
     t0 = time.perf_counter()
     try:
         db_frames = {}
@@ -297,29 +258,51 @@ def _attempt(ctx: RunContext, job: str, window: Window, force: bool, attempt: in
                 frame, entry = database_frame(ws.root, name, source, window, ws.cadence(job).tz.key, stats)
                 db_frames[name] = frame
                 db_entries.append(entry)
-        prep = prepared if prepared is not None and not db_entries else prepare(ctx, job, window, db_entries)
+        prep = prepare(ctx, job, window, db_entries)
+        fingerprint = prep.fingerprint
         if prep.waiting:
-            return Outcome(job, window.id, "waiting", prep.waiting), took
-        values, texts = _run_values(ctx, job, window, prep, attempt, force), _texts(prep)
-        if not held:
-            status, run_id = ctx.ledger.begin_run(job, window.key, ctx.owner, CLAIM_TTL,
+            if fence is not None:
+                ctx.ledger.release(job, window.key, ctx.owner)
+            return _timed(Outcome(job, window.id, "waiting", prep.waiting), t0)
+        values, texts = _run_values(ctx, job, window, prep, attempt.number, force), _texts(prep)
+        if fence is None:
+            status, run_id = ctx.ledger.begin_run(job, window.key, ctx.owner, ctx.lease,
                                                   None if force else prep.fingerprint, values, texts)
             if status == "claimed":
-                return Outcome(job, window.id, "claimed", "another process is running this window"), took
+                return _timed(Outcome(job, window.id, "claimed", "another process is running this window"), t0)
             if status == "current":
-                return Outcome(job, window.id, "skipped", "current: already done with this fingerprint"), took
-            assert ctx.claims is not None
-            ctx.claims.hold(job, window.key)
-            took = True
+                return _timed(Outcome(job, window.id, "skipped", "current: already done with this fingerprint"), t0)
+            assert run_id is not None
+            fence = run_id
         else:
             current = ctx.ledger.state_row(job, window.key)
             if (not force and current is not None and current["state"] == "done"
                     and current["fingerprint"] == prep.fingerprint and not current.get("output_state")):
-                return Outcome(job, window.id, "skipped", "current: already done with this fingerprint"), took
-            run_id = ctx.ledger.start_run(values, texts)
-        return _execute(ctx, job, window, prep, run_id, stats, db_frames, t0), took
+                ctx.ledger.release(job, window.key, ctx.owner)
+                return _timed(Outcome(job, window.id, "skipped", "current: already done with this fingerprint"), t0)
+            run_id = ctx.ledger.start_run(values, texts, ctx.owner, fence, ctx.lease)
+            if run_id is None:
+                return _timed(Outcome(job, window.id, "claimed", LOST), t0)
+        if on_claim is not None:
+            on_claim(fence, run_id, prep.fingerprint)
+        return _timed(_execute(ctx, job, window, prep, run_id, fence, stats, db_frames, t0), t0)
+    except ClaimLost:
+        if run_id is not None:
+            ctx.ledger.abandon_run(run_id, LOST)
+        return _timed(Outcome(job, window.id, "claimed", LOST, run_id), t0)
     except Exception as exc:  # noqa: BLE001 - every failure is recorded, none escapes
-        return _fail(ctx, job, window, run_id, exc, stats, attempt, t0), took
+        outcome = record_failure(ctx, attempt, error_text(exc), run_id=run_id, fence=fence, fingerprint=fingerprint,
+                                 stats=stats, exc=exc, seconds=time.perf_counter() - t0, on_claim=on_claim)
+        return _timed(outcome, t0)
+
+
+def _timed(outcome: Outcome, t0: float) -> Outcome:
+    outcome.seconds = time.perf_counter() - t0
+    return outcome
+
+
+def _key_to_instant(key: str) -> str:
+    return key.replace("Z", "+00:00")
 
 
 def _run_values(ctx: RunContext, job: str, window: Window, prep: Prepared, attempt: int, force: bool
@@ -339,7 +322,7 @@ def _texts(prep: Prepared) -> list[tuple[str, str, str]]:
     return [(prep.parts[c].hash, c, prep.parts[c].text) for c in fp.COMPONENTS]
 
 
-def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: int, stats: Any,
+def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: int, fence: int, stats: Any,
              db_frames: dict[str, Any], t0: float) -> Outcome:
     import polars as pl
 
@@ -381,6 +364,7 @@ def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: 
             if stats.rejected:
                 rejected_stage = sinks.stage_frame_file(ws.root, rejected_path, pl.concat(stats.rejected,
                                                                                         how="diagonal_relaxed"))
+            _confirm(ctx, job, window, fence)  # fencing: only the claim's holder swaps
         except BaseException:
             staged.discard()
             if rejected_stage is not None:
@@ -399,6 +383,7 @@ def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: 
         step_seconds = time.perf_counter() - step_start
         stats.check_fractions()
         check_output(frame.lazy(), list(out.checks), previous, output=f"table {out.table}")
+        _confirm(ctx, job, window, fence)  # fencing: only the claim's holder replaces the rows
         rows, digest = sinks.write_table(_db_url(ws.root, out.database), out.table, frame, window.key)
         location, checksum = f"table {out.table}", None
     finished = {
@@ -414,8 +399,15 @@ def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: 
         "ingested_at": _ingested(prep), "seconds": finished["seconds"], "last_fingerprint": prep.fingerprint,
         "output_state": None,
     }
-    ctx.ledger.finish_run(run_id, job, window.key, ctx.owner, finished, state)
+    if not ctx.ledger.finish_run(run_id, job, window.key, ctx.owner, fence, finished, state, release=True):
+        return Outcome(job, window.id, "claimed", LOST, run_id)
     return Outcome(job, window.id, "done", "ran", run_id, step_seconds=step_seconds, rows_written=rows)
+
+
+def _confirm(ctx: RunContext, job: str, window: Window, fence: int) -> None:
+    """Raise ClaimLost unless this run still holds the window's claim; extend its lease for the swap."""
+    if not ctx.ledger.confirm(job, window.key, ctx.owner, fence, ctx.lease):
+        raise ClaimLost
 
 
 def _input_bytes(ws: Workspace, prep: Prepared) -> int:
@@ -525,36 +517,94 @@ def log_path(root: Path, job: str, window: Window) -> Path:
     return root / LOGS / job / f"{window.id.replace('/', '_')}.log"
 
 
-def _fail(ctx: RunContext, job: str, window: Window, run_id: int | None, exc: BaseException, stats: Any,
-          attempt: int, t0: float) -> Outcome:
+def record_failure(ctx: RunContext, attempt: Attempt, message: str, run_id: int | None = None,
+                   fence: int | None = None, fingerprint: str | None = None, stats: Any = None,
+                   exc: BaseException | None = None, seconds: float = 0.0,
+                   on_claim: Callable[[int, int, str | None], None] | None = None) -> Outcome:
+    """Record a failed attempt (log, run row, window state) under the window's claim; the Outcome.
+
+    Used by workers for exceptions and by the supervisor for a worker that
+    died or ran out of time. Without a run yet, the claim is taken first (a
+    live holder elsewhere makes this `claimed`, nothing recorded). The claim
+    is kept when a retry will follow, else released. A forced re-run of a
+    window whose previous output is intact and current leaves the window done
+    (the failed attempt stays in its history).
+    """
     from runner.checks import CheckFailed
     from runner.errors import WeirError
     from runner.sinks import open_append
 
-    message = error_text(exc)
+    job = attempt.job
+    window = ctx.ws.cadence(job).window(_key_to_instant(attempt.window_key))
     path = log_path(ctx.ws.root, job, window)
     try:
         with open_append(ctx.ws.root, str(path.relative_to(ctx.ws.root))) as fh:
-            fh.write(f"=== {utc_text()} {job} {window.id} attempt {attempt} run {run_id}\n{message}\n\n")
-            fh.write("".join(traceback.format_exception(exc)))
-            fh.write("\n")
+            fh.write(f"=== {utc_text()} {job} {window.id} attempt {attempt.number} run {run_id}\n{message}\n\n")
+            if exc is not None:
+                fh.write("".join(traceback.format_exception(exc)))
+                fh.write("\n")
     except (OSError, WeirError):  # no log (say, state/logs leads outside the workspace); the ledger has the error
         pass
-    if run_id is None:
+    prep = None
+    if fingerprint is None or run_id is None:
         try:
             prep = prepare(ctx, job, window)
-            run_id = ctx.ledger.start_run(_run_values(ctx, job, window, prep, attempt, False), _texts(prep))
+            fingerprint = fingerprint or prep.fingerprint
         except Exception:  # noqa: BLE001 - preparing itself failed; record what we can
-            end_key = Window(window.end, window.end, window.tz).key
-            run_id = ctx.ledger.start_run({"job": job, "window_key": window.key, "window_end": end_key,
-                                           "window_id": window.id, "attempt": attempt})
+            prep = None
+    end_key = Window(window.end, window.end, window.tz).key
+    if prep is not None:
+        values = _run_values(ctx, job, window, prep, attempt.number, attempt.force)
+        texts = _texts(prep)
+    else:
+        values = {"job": job, "window_key": window.key, "window_end": end_key, "window_id": window.id,
+                  "attempt": attempt.number, "forced": attempt.force}
+        texts = []
+    if run_id is None and fence is not None:
+        run_id = ctx.ledger.start_run(values, texts, ctx.owner, fence, ctx.lease)
+        if run_id is None:
+            return Outcome(job, window.id, "claimed", LOST, error=message)
+    elif run_id is None:
+        status, run_id = ctx.ledger.begin_run(job, window.key, ctx.owner, ctx.lease, None, values, texts)
+        if status != "started" or run_id is None:
+            return Outcome(job, window.id, "claimed", "another process is running this window", error=message)
+        fence = run_id
+        if on_claim is not None:
+            on_claim(fence, run_id, fingerprint)
+    assert fence is not None
     finished = {
-        "status": "failed", "seconds": time.perf_counter() - t0, "error": message,
+        "status": "failed", "seconds": seconds, "error": message,
         "failed_check": exc.check if isinstance(exc, CheckFailed) else None,
-        "rows_read": stats.rows_read if stats.counted else None, "rows_dropped": stats.rows_dropped,
-        "rows_rejected": stats.rows_rejected,
+        "rows_read": stats.rows_read if stats is not None and stats.counted else None,
+        "rows_dropped": stats.rows_dropped if stats is not None else None,
+        "rows_rejected": stats.rows_rejected if stats is not None else None,
     }
-    state = {"window_end": Window(window.end, window.end, window.tz).key, "window_id": window.id,
-             "state": "failed", "seconds": finished["seconds"]}
-    ctx.ledger.finish_run(run_id, job, window.key, None, finished, state)
-    return Outcome(job, window.id, "failed", message, run_id, error=message)
+    reason = message
+    state: dict[str, Any] | None = {"window_end": end_key, "window_id": window.id, "state": "failed",
+                                    "seconds": seconds}
+    if attempt.force and fingerprint is not None and _intact_and_current(ctx, job, window, fingerprint):
+        state = None
+        reason = f"{message} (the previous output is intact and current: the window stays done)"
+    final = attempt.number > ctx.ws.jobs[job].spec.retries
+    if not ctx.ledger.finish_run(run_id, job, window.key, ctx.owner, fence, finished, state, release=final):
+        return Outcome(job, window.id, "claimed", LOST, run_id, error=message)
+    return Outcome(job, window.id, "failed", reason, run_id, error=message)
+
+
+def _intact_and_current(ctx: RunContext, job: str, window: Window, fingerprint: str) -> bool:
+    """Whether the window is recorded done with `fingerprint` and its output is still what was recorded."""
+    from runner.sinks import read_table_digest
+    from runner.sources import file_sha256
+
+    state = ctx.ledger.state_row(job, window.key)
+    if (state is None or state["state"] != "done" or state.get("output_state")
+            or state["fingerprint"] != fingerprint or not state.get("output")):
+        return False
+    out = ctx.ws.jobs[job].spec.output
+    try:
+        if out.path is not None:
+            return bool(state["output_checksum"]) and file_sha256(ctx.ws.root / state["output"]) == state[
+                "output_checksum"]
+        return read_table_digest(_db_url(ctx.ws.root, out.database), out.table, window.key) == state["output_digest"]
+    except Exception:  # noqa: BLE001 - an output that cannot be read is not intact
+        return False

@@ -4,8 +4,8 @@ Pure functions. A window's fingerprint has four components, each hashed and
 stored on its own so that a change can be attributed:
 
 * `spec`: the normalized job spec. Comments, key order, `description` and the
-  operational settings (retries, settle, recheck, catch-up, lateness, the
-  range `start`/`end`, output checks, an input's `allow_outside`) do not
+  operational settings (retries, settle, recheck, catch-up, lateness, time allowed,
+  the range `start`/`end`, output checks, an input's `allow_outside`) do not
   count, nor does step code.
 * `code`: the SQL text of each step; for python steps the module file's bytes.
 * `input`: for each input file its relative path, size and mtime_ns (or a hash
@@ -33,7 +33,7 @@ if TYPE_CHECKING:
 COMPONENTS = ("spec", "code", "input", "upstream")
 _DIGITS = 32  # hex digits kept: 128 bits
 
-_OPERATIONAL = {"description", "retries", "retry_delay", "recheck", "max_catch_up", "late_after"}
+_OPERATIONAL = {"description", "retries", "retry_delay", "recheck", "max_catch_up", "late_after", "time_allowed"}
 _WINDOW_OPERATIONAL = {"start", "end", "settle"}
 
 

@@ -12,14 +12,20 @@ Tables
 - `windows`: the current state per (job, window): the last finished run.
 - `texts`: normalized spec, code and input/upstream manifests by hash, so a
   later change can be shown as a diff.
-- `claims`: leases that stop two processes running the same window.
+- `claims`: leases that stop two processes running the same window, each
+  with a fencing number (the id of the run that took it, so it grows with
+  every take-over).
 - `locks`: named workspace-wide leases (one `weir tick` at a time).
 
 Instants are stored as RFC 3339 UTC text (`2026-01-01T00:00:00Z`); windows are
 keyed by their UTC start. Claims and locks are taken with a plain INSERT (the
-primary key makes it atomic) or, when the holder's lease has expired, a
-conditional UPDATE; both are atomic on every database, so no dialect-specific
-locking is needed and several hosts can share one PostgreSQL ledger.
+primary key makes it atomic) or, when the holder is free (its lease expired,
+or it is provably gone: `leases.holder_gone`), a conditional UPDATE; both are
+atomic on every database, so no dialect-specific locking is needed and
+several hosts can share one PostgreSQL ledger. Lease expiry is measured on
+the database server's clock, so hosts whose clocks disagree agree on it. A
+run records `done` (and releases its claim) only while it still holds the
+claim under its fence; a run that lost it is recorded `abandoned`.
 """
 
 from __future__ import annotations
@@ -37,11 +43,14 @@ import sqlalchemy as sa
 from sqlalchemy import exc as sa_exc
 
 from runner.errors import LedgerError
+from runner.leases import HeldLock, holder_gone, owner_id
+
+__all__ = ["HeldLock", "Ledger", "default_url", "owner_id", "utc_text"]
 
 if TYPE_CHECKING:
     import polars as pl
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2  # 2: claims carry a fencing number
 
 metadata = sa.MetaData()
 
@@ -125,6 +134,7 @@ claims = sa.Table(
     sa.Column("window_key", sa.String(32), primary_key=True),
     sa.Column("owner", sa.String(200), nullable=False),
     sa.Column("expires", sa.Float, nullable=False),
+    sa.Column("fence", sa.BigInteger, nullable=False, default=0),
 )
 
 locks = sa.Table(
@@ -149,13 +159,35 @@ _RUN_FINGERPRINT = sa.select(runs.c.fingerprint).where(runs.c.id == _b("b_run_id
 _STATE_ROW = sa.select(windows).where(windows.c.job == _b("b_job"), windows.c.window_key == _b("b_key"))
 _UPDATE_WINDOW = sa.update(windows).where(windows.c.job == _b("b_job"), windows.c.window_key == _b("b_key"))
 _INSERT_WINDOW = sa.insert(windows)
-_INSERT_CLAIM = sa.insert(claims)
-_CLAIM_HOLDER = sa.select(claims.c.owner, claims.c.expires).where(
-    claims.c.job == _b("b_job"), claims.c.window_key == _b("b_key"))
-_TAKE_CLAIM = sa.update(claims).where(
-    claims.c.job == _b("b_job"), claims.c.window_key == _b("b_key"), claims.c.owner == _b("b_holder"))
-_RELEASE_CLAIM = sa.delete(claims).where(
-    claims.c.job == _b("b_job"), claims.c.window_key == _b("b_key"), claims.c.owner == _b("b_owner"))
+_CLAIM_WHERE = (claims.c.job == _b("b_job"), claims.c.window_key == _b("b_key"))
+_RELEASE_CLAIM = sa.delete(claims).where(*_CLAIM_WHERE, claims.c.owner == _b("b_owner"))
+_SET_FENCE = sa.update(claims).where(*_CLAIM_WHERE, claims.c.owner == _b("b_owner")).values(fence=_b("b_fence"))
+
+
+def _server_clock(dialect: str) -> Any:
+    """Seconds since the epoch on the database server's clock, as an SQL expression."""
+    if dialect == "sqlite":
+        return sa.literal_column("((julianday('now') - 2440587.5) * 86400.0)")
+    if dialect == "postgresql":
+        return sa.literal_column("CAST(EXTRACT(EPOCH FROM clock_timestamp()) AS DOUBLE PRECISION)")
+    if dialect in ("mysql", "mariadb"):
+        return sa.literal_column("UNIX_TIMESTAMP(NOW(6))")
+    return sa.bindparam("b_clock", callable_=time.time, type_=sa.Float)  # others: this host's clock
+
+
+class _ClaimStatements:
+    """The claim statements of one ledger, built once around its server's clock."""
+
+    def __init__(self, now: Any):
+        c = claims.c
+        self.now = now
+        self.holder = sa.select(c.owner, c.fence, (c.expires < now).label("lapsed")).where(*_CLAIM_WHERE)
+        self.insert = sa.insert(claims).values(job=_b("b_job"), window_key=_b("b_key"), owner=_b("b_owner"),
+                                               expires=now + _b("b_lease"), fence=0)
+        self.take = sa.update(claims).where(*_CLAIM_WHERE, c.owner == _b("b_holder"), c.fence == _b("b_was")).values(
+            owner=_b("b_owner"), expires=now + _b("b_lease"))
+        self.confirm = sa.update(claims).where(*_CLAIM_WHERE, c.owner == _b("b_owner"), c.fence == _b("b_fence")
+                                               ).values(expires=now + _b("b_lease"))
 
 
 def utc_text(instant: datetime | None = None) -> str:
@@ -170,13 +202,15 @@ def default_url(root: Path) -> str:
     return f"sqlite:///{root / LEDGER}"
 
 
-def owner_id() -> str:
-    """This process, as a claim owner: host:pid:start."""
-    return f"{socket.gethostname()}:{os.getpid()}:{int(time.time() * 1000) % 10_000_000}"
-
-
 class Ledger:
-    """A connection to one ledger database. Cheap to create; one per process."""
+    """A connection to one ledger database. Cheap to create; one per process.
+
+    Pickled (to hand a run context to a worker process) as its URL: the
+    worker opens its own connection.
+    """
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        return (Ledger, (self.url,))
 
     def __init__(self, url: str, create: bool = True):
         from runner import engines
@@ -205,6 +239,8 @@ class Ledger:
         except (sa_exc.ArgumentError, sa_exc.NoSuchModuleError, ImportError) as exc:
             raise LedgerError(f"cannot open ledger {url!r}: {exc}") from None
         self._reader = self.engine.execution_options(**engines.READ)
+        self._now = _server_clock(parsed.get_backend_name())
+        self._claims = _ClaimStatements(self._now)
         _ensure_schema(self.engine, self.url)
         self._stored_texts: set[str] = set()
 
@@ -252,15 +288,8 @@ class Ledger:
     # ------------------------------------------------------------ claims and locks
 
     def claim(self, job: str, key: str, owner: str, ttl: float) -> bool:
-        """Take the claim on (job, window) unless another live owner holds it."""
+        """Take the claim on (job, window) unless a live holder has it (see `leases.holder_gone`)."""
         return self._lease(claims, {"job": job, "window_key": key}, owner, ttl)
-
-    def renew(self, job: str, key: str, owner: str, ttl: float) -> bool:
-        with self._tx() as conn:
-            res = conn.execute(sa.update(claims).where(
-                claims.c.job == job, claims.c.window_key == key, claims.c.owner == owner
-            ).values(expires=time.time() + ttl))
-        return res.rowcount == 1
 
     def release(self, job: str, key: str, owner: str, conn: sa.Connection | None = None) -> None:
         params = {"b_job": job, "b_key": key, "b_owner": owner}
@@ -270,137 +299,213 @@ class Ledger:
         with self._tx() as c:
             c.execute(_RELEASE_CLAIM, params)
 
+    def release_claims(self, owner: str, reason: str) -> int:
+        """Release every window claim of `owner` (a runner stopping); how many there were.
+
+        Runs of those windows still recorded `running` will not finish: they are recorded
+        `abandoned` with `reason`.
+        """
+        with self._tx() as conn:
+            held = conn.execute(sa.select(claims.c.job, claims.c.window_key).where(claims.c.owner == owner)).all()
+            for job, key in held:
+                conn.execute(sa.update(runs).where(runs.c.job == job, runs.c.window_key == key,
+                                                   runs.c.status == "running")
+                             .values(status="abandoned", finished_at=utc_text(), error=reason))
+            return conn.execute(sa.delete(claims).where(claims.c.owner == owner)).rowcount
+
+    def confirm(self, job: str, key: str, owner: str, fence: int, lease: float) -> bool:
+        """Whether `owner` still holds the claim under `fence`; if so, its lease is extended."""
+        with self._tx() as conn:
+            return conn.execute(self._claims.confirm, {"b_job": job, "b_key": key, "b_owner": owner,
+                                                       "b_fence": fence, "b_lease": lease}).rowcount == 1
+
+    def renew_all(self, owner: str, lease: float) -> dict[tuple[str, str], int]:
+        """Extend every claim and lock of `owner`; return the claims it holds: (job, window_key) -> fence."""
+        with self._tx() as conn:
+            conn.execute(sa.update(claims).where(claims.c.owner == owner).values(expires=self._now + lease))
+            conn.execute(sa.update(locks).where(locks.c.owner == owner).values(expires=self._now + lease))
+            rows = conn.execute(sa.select(claims.c.job, claims.c.window_key, claims.c.fence)
+                                .where(claims.c.owner == owner)).all()
+        return {(r[0], r[1]): r[2] for r in rows}
+
+    def claim_holders(self, keys: list[tuple[str, str]]) -> dict[tuple[str, str], tuple[str, int]]:
+        """(owner, fence) of whoever holds each of `keys` now (absent: nobody)."""
+        out = {}
+        with self._tx(read=True) as conn:
+            for job, key in keys:
+                row = conn.execute(self._claims.holder, {"b_job": job, "b_key": key}).first()
+                if row is not None:
+                    out[(job, key)] = (row[0], row[1])
+        return out
+
     def claimed(self, job: str | None = None) -> dict[tuple[str, str], str]:
-        """Live claims: (job, window_key) -> owner."""
+        """Live claims: (job, window_key) -> owner. Expired claims and holders provably gone are free."""
         if self.engine is None:
             return {}
-        q = sa.select(claims.c.job, claims.c.window_key, claims.c.owner).where(claims.c.expires > time.time())
+        q = sa.select(claims.c.job, claims.c.window_key, claims.c.owner).where(claims.c.expires > self._now)
         if job is not None:
             q = q.where(claims.c.job == job)
         with self._tx(read=True) as conn:
-            return {(r[0], r[1]): r[2] for r in conn.execute(q)}
+            rows = conn.execute(q).all()
+        gone = {owner: holder_gone(owner) for owner in {r[2] for r in rows}}
+        return {(r[0], r[1]): r[2] for r in rows if not gone[r[2]]}
 
     def lock(self, name: str, owner: str, ttl: float) -> bool:
         return self._lease(locks, {"name": name}, owner, ttl)
-
-    def renew_lock(self, name: str, owner: str, ttl: float) -> bool:
-        with self._tx() as conn:
-            res = conn.execute(sa.update(locks).where(locks.c.name == name, locks.c.owner == owner)
-                               .values(expires=time.time() + ttl))
-        return res.rowcount == 1
 
     def unlock(self, name: str, owner: str) -> None:
         with self._tx() as conn:
             conn.execute(sa.delete(locks).where(locks.c.name == name, locks.c.owner == owner))
 
+    def lock_holder(self, name: str) -> str | None:
+        if self.engine is None:
+            return None
+        with self._tx(read=True) as conn:
+            row = conn.execute(sa.select(locks.c.owner).where(locks.c.name == name)).first()
+        return row[0] if row else None
+
     def _lease(self, table: sa.Table, key: dict[str, str], owner: str, ttl: float) -> bool:
-        now = time.time()
+        """Take a lease: insert it, or take it over when ours or free (expired, or its holder gone)."""
         where = [table.c[k] == v for k, v in key.items()]
         try:
             with self._tx() as conn:
-                stmt = _INSERT_CLAIM if table is claims else sa.insert(table)
-                conn.execute(stmt, {**key, "owner": owner, "expires": now + ttl})
+                conn.execute(sa.insert(table).values(**key, owner=owner, expires=self._now + ttl))
             return True
         except sa_exc.IntegrityError:
             pass
         with self._tx() as conn:
-            res = conn.execute(sa.update(table).where(
-                *where, sa.or_(table.c.expires < now, table.c.owner == owner)
-            ).values(owner=owner, expires=now + ttl))
-        if res.rowcount == 1:
-            return True
-        # A holder on this host whose process is gone (killed, crashed) will never renew or
-        # release: take its lease over now rather than making a resumed run wait for expiry.
-        with self._tx(read=True) as conn:
-            row = conn.execute(sa.select(table.c.owner).where(*where)).first()
-        if row is None or not _gone(row[0]):
-            return False
-        with self._tx() as conn:
-            res = conn.execute(sa.update(table).where(*where, table.c.owner == row[0])
-                               .values(owner=owner, expires=now + ttl))
-        return res.rowcount == 1
+            row = conn.execute(sa.select(table.c.owner, (table.c.expires < self._now).label("lapsed"))
+                               .where(*where)).first()
+            if row is None:
+                return False  # released meanwhile: the caller may simply try again
+            if not (row[0] == owner or row[1] or holder_gone(row[0])):
+                return False
+            return conn.execute(sa.update(table).where(*where, table.c.owner == row[0])
+                                .values(owner=owner, expires=self._now + ttl)).rowcount == 1
 
     # ------------------------------------------------------------ runs
 
-    def begin_run(self, job: str, key: str, owner: str, ttl: float, fingerprint: str | None,
-                  values: dict[str, Any], stored: Iterable[tuple[str, str, str]] = ()) -> tuple[str, int | None]:
-        """In one transaction: skip a current window, take its claim, record the run as `running`.
+    def _take_claim(self, conn: sa.Connection, job: str, key: str, owner: str, lease: float) -> bool:
+        """Take (job, key)'s claim in `conn`'s transaction; False when a live holder has it."""
+        params = {"b_job": job, "b_key": key, "b_owner": owner, "b_lease": lease}
+        holder = conn.execute(self._claims.holder, params).first()
+        if holder is None:
+            conn.execute(self._claims.insert, params)
+            return True
+        if holder[0] == owner or holder[2] or holder_gone(holder[0]):
+            # ours, expired, or held by a process of this place that has ended
+            return conn.execute(self._claims.take, {**params, "b_holder": holder[0], "b_was": holder[1]}
+                                ).rowcount == 1
+        return False
 
-        Returns ("current", None) when the window is done with `fingerprint` (pass
-        None to run regardless), ("claimed", None) when another live process holds
-        it, else ("started", run_id) with the claim held by `owner`.
+    def begin_run(self, job: str, key: str, owner: str, lease: float, fingerprint: str | None,
+                  values: dict[str, Any], stored: Iterable[tuple[str, str, str]] = ()
+                  ) -> tuple[str, int | None]:
+        """In one transaction: take the window's claim, then skip it if current, else record the run.
+
+        The claim is taken first and the state read after, so a runner that has
+        just finished the window (and released its claim with the same commit)
+        is always seen. Returns ("claimed", None) when a live holder has it,
+        ("current", None) when it is done with `fingerprint` (None: run
+        regardless; nothing is kept), else ("started", run_id): the claim is
+        held by `owner` with the run's id as its fencing number.
         """
-        now = time.time()
         where = {"b_job": job, "b_key": key}
         try:
             with self._tx() as conn:
+                if not self._take_claim(conn, job, key, owner, lease):
+                    return "claimed", None
                 if fingerprint is not None:
                     state = conn.execute(_STATE_ROW, where).mappings().first()
                     if (state is not None and state["state"] == "done" and state["fingerprint"] == fingerprint
                             and not state["output_state"]):
-                        return "current", None
-                holder = conn.execute(_CLAIM_HOLDER, where).first()
-                lease = {"job": job, "window_key": key, "owner": owner, "expires": now + ttl}
-                if holder is None:
-                    conn.execute(_INSERT_CLAIM, lease)
-                elif holder[0] == owner or holder[1] < now or _gone(holder[0]):
-                    # our own, expired, or held by a process of this host that has ended
-                    conn.execute(_TAKE_CLAIM, {**where, "b_holder": holder[0], "owner": owner,
-                                               "expires": now + ttl})
-                else:
-                    return "claimed", None
+                        raise _Current
                 self.put_texts(conn, stored)
                 row = {"status": "running", "started_at": utc_text(), "host": socket.gethostname(),
                        "pid": os.getpid(), **values}
                 run_id = int(conn.execute(_INSERT_RUN, row).inserted_primary_key[0])
+                conn.execute(_SET_FENCE, {**where, "b_owner": owner, "b_fence": run_id})
+        except _Current:
+            return "current", None  # rolled back: the claim was never taken
         except sa_exc.IntegrityError:
             return "claimed", None  # another process inserted the claim first (databases without a write lock)
         return "started", run_id
 
-    def start_run(self, values: dict[str, Any], stored: Iterable[tuple[str, str, str]] = ()) -> int:
-        """Record a run attempt as `running`; store its texts; return its id."""
+    def start_run(self, values: dict[str, Any], stored: Iterable[tuple[str, str, str]], owner: str,
+                  fence: int, lease: float) -> int | None:
+        """Record another attempt, as `running`, at a window whose claim `owner` holds under `fence`.
+
+        None (nothing recorded) when the claim was lost meanwhile.
+        """
         row = {
             "status": "running", "started_at": utc_text(), "host": socket.gethostname(), "pid": os.getpid(),
             **values,
         }
         with self._tx() as conn:
+            if conn.execute(self._claims.confirm, {"b_job": values["job"], "b_key": values["window_key"],
+                                                   "b_owner": owner, "b_fence": fence, "b_lease": lease}
+                            ).rowcount != 1:
+                return None
             self.put_texts(conn, stored)
-            res = conn.execute(_INSERT_RUN, row)
-            return int(res.inserted_primary_key[0])
+            return int(conn.execute(_INSERT_RUN, row).inserted_primary_key[0])
 
-    def finish_run(self, run_id: int, job: str, key: str, owner: str | None, values: dict[str, Any],
-                   window: dict[str, Any]) -> None:
-        """Close a run and update its window's state and claim, in one transaction.
+    def finish_run(self, run_id: int, job: str, key: str, owner: str, fence: int, values: dict[str, Any],
+                   window: dict[str, Any] | None, release: bool) -> bool:
+        """Close a run and update its window's state and claim, in one transaction, if still holding it.
 
         `values` updates the run row (status done or failed, figures, error);
-        `window` holds the state row to write for (job, key).
+        `window` holds the state row to write for (job, key) (None: leave the
+        state as it is); `release` gives the claim up. When `owner` no longer
+        holds the claim under `fence` (another runner took it over), nothing
+        but the run is touched: it is recorded `abandoned`, and False returned.
         """
         values = {"finished_at": utc_text(), **values}
         where = {"b_job": job, "b_key": key}
         with self._tx() as conn:
+            held = conn.execute(sa.select(claims.c.owner).where(
+                *_CLAIM_WHERE, claims.c.owner == _b("b_owner"), claims.c.fence == _b("b_fence")
+            ).with_for_update(), {**where, "b_owner": owner, "b_fence": fence}).first() is not None
+            if not held:
+                lost = "the claim was lost to another runner before this run finished; its result was discarded"
+                conn.execute(_UPDATE_RUN, {"b_run_id": run_id, **values, "status": "abandoned",
+                                           "error": values.get("error") or lost})
+                return False
             conn.execute(_UPDATE_RUN, {"b_run_id": run_id, **values})
             # earlier attempts at this window that never finished: their process died
             conn.execute(_ABANDON_RUNS, {**where, "b_run_id": run_id})
-            state = dict(window)
-            state.update(job=job, window_key=key, run_id=run_id, finished_at=values["finished_at"])
-            if "last_fingerprint" not in state:
-                state["last_fingerprint"] = conn.execute(_RUN_FINGERPRINT, {"b_run_id": run_id}).scalar()
-            if state["state"] == "failed":
-                current = conn.execute(_STATE_ROW, where).mappings().first()
-                if current is not None:
-                    # keep the last good output's identity: consumers and digests still refer to it
-                    for col in ("output", "output_digest", "output_checksum", "good_run_id", "fingerprint",
-                                "fp_spec", "fp_code", "fp_input", "fp_upstream", "ingested_at"):
-                        if state.get(col) is None:
-                            state[col] = current[col]
-                state["failures"] = (current["failures"] or 0) + 1 if current is not None else 1
-            else:
-                state["failures"] = 0
-                state["good_run_id"] = run_id
-            if conn.execute(_UPDATE_WINDOW, {**where, **state}).rowcount == 0:
-                conn.execute(_INSERT_WINDOW, state)
-            if owner is not None:
+            if window is not None:
+                self._write_state(conn, run_id, job, key, values, window)
+            if release:
                 self.release(job, key, owner, conn)
+        return True
+
+    def abandon_run(self, run_id: int, reason: str) -> None:
+        """Record a run that will not finish (its runner was interrupted) as `abandoned`."""
+        with self._tx() as conn:
+            conn.execute(sa.update(runs).where(runs.c.id == run_id, runs.c.status == "running").values(
+                status="abandoned", finished_at=utc_text(), error=reason))
+
+    def _write_state(self, conn: sa.Connection, run_id: int, job: str, key: str, values: dict[str, Any],
+                     window: dict[str, Any]) -> None:
+        where = {"b_job": job, "b_key": key}
+        state = dict(window)
+        state.update(job=job, window_key=key, run_id=run_id, finished_at=values["finished_at"])
+        if "last_fingerprint" not in state:
+            state["last_fingerprint"] = conn.execute(_RUN_FINGERPRINT, {"b_run_id": run_id}).scalar()
+        if state["state"] == "failed":
+            current = conn.execute(_STATE_ROW, where).mappings().first()
+            if current is not None:
+                # keep the last good output's identity: consumers and digests still refer to it
+                for col in ("output", "output_digest", "output_checksum", "good_run_id", "fingerprint",
+                            "fp_spec", "fp_code", "fp_input", "fp_upstream", "ingested_at"):
+                    if state.get(col) is None:
+                        state[col] = current[col]
+            state["failures"] = (current["failures"] or 0) + 1 if current is not None else 1
+        else:
+            state["failures"] = 0
+            state["good_run_id"] = run_id
+        if conn.execute(_UPDATE_WINDOW, {**where, **state}).rowcount == 0:
+            conn.execute(_INSERT_WINDOW, state)
 
     def set_output_state(self, job: str, keys: list[str], value: str | None) -> None:
         """Mark outputs found missing or changed outside weir (`weir verify`)."""
@@ -595,20 +700,6 @@ class Ledger:
         return out
 
 
-def _gone(owner: str) -> bool:
-    """True when `owner` (host:pid:start, see `owner_id`) is a process of this host that has ended."""
-    parts = owner.rsplit(":", 2)
-    if len(parts) != 3 or parts[0] != socket.gethostname() or not parts[1].isdigit():
-        return False
-    try:
-        os.kill(int(parts[1]), 0)
-    except ProcessLookupError:
-        return True
-    except OSError:
-        return False  # it exists (perhaps another user's process)
-    return False
-
-
 def _frame(rows: list[tuple], columns: list[tuple[str, Any, Any]]) -> pl.DataFrame:
     """A frame built column by column from DBAPI row tuples."""
     import polars as pl
@@ -642,6 +733,8 @@ def _ensure_schema(engine: sa.Engine, url: str) -> None:
                         f"this weir knows up to {SCHEMA_VERSION}); upgrade weir to use it")
                 if version == SCHEMA_VERSION:
                     return
+                if version == 1:  # claims live for minutes: a new column with a default is enough
+                    conn.execute(sa.text("ALTER TABLE weir_claims ADD COLUMN fence BIGINT NOT NULL DEFAULT 0"))
             metadata.create_all(conn)
             conn.execute(sa.delete(meta).where(meta.c.key == "schema_version"))
             conn.execute(sa.insert(meta).values(key="schema_version", value=str(SCHEMA_VERSION)))
@@ -702,45 +795,5 @@ def _explain(url: str, exc: Exception) -> str:
     return f"ledger {url}: {text}"
 
 
-class HeldLock:
-    """A workspace-wide lock held for a block, renewed from a background thread.
-
-    `acquired` is False when another live owner holds it; the block then runs
-    without it (the caller decides what to do).
-    """
-
-    def __init__(self, ledger: Ledger, name: str, owner: str, ttl: float = 300.0):
-        import threading
-
-        self.ledger, self.name, self.owner, self.ttl = ledger, name, owner, ttl
-        self.acquired = False
-        self._stop = threading.Event()
-        self._thread: threading.Thread | None = None
-
-    def __enter__(self) -> HeldLock:
-        import threading
-
-        self.acquired = self.ledger.lock(self.name, self.owner, self.ttl)
-        if self.acquired:
-            self._thread = threading.Thread(target=self._renew, name="weir-lock", daemon=True)
-            self._thread.start()
-        return self
-
-    def _renew(self) -> None:
-        import contextlib
-
-        while not self._stop.wait(self.ttl / 3):
-            with contextlib.suppress(Exception):
-                self.ledger.renew_lock(self.name, self.owner, self.ttl)
-
-    def __exit__(self, *exc: object) -> None:
-        self._stop.set()
-        if self.acquired:
-            self.ledger.unlock(self.name, self.owner)
-
-    def holder(self) -> str | None:
-        if self.ledger.engine is None:
-            return None
-        with self.ledger._tx(read=True) as conn:
-            row = conn.execute(sa.select(locks.c.owner).where(locks.c.name == self.name)).first()
-        return row[0] if row else None
+class _Current(Exception):
+    """The window is current: roll the claim back."""

@@ -1,200 +1,546 @@
-"""Parallel execution of a plan: dependency order, bounded workers, progress callbacks.
+"""Running a plan in supervised worker processes: dependency order, time limits, crashes, claims.
 
-Tasks run in worker processes (spawned, so polars' thread pools are never
-forked), at most `workers` at a time; a task starts when every task it
-depends on has finished. When a dependency fails or is left waiting, its
-dependants are not run and are reported as waiting. With one worker
-everything runs in this process.
+Every attempt at a window runs in a worker process (`execute.run_attempt`),
+never in this one: only a separate process can be stopped whatever its step
+does (sleeps, spins in a regular expression without letting go of the
+interpreter, calls `os._exit`, is killed for memory). This process, the
+*supervisor*:
+
+- hands attempts to at most `workers` processes over pipes (two queued per
+  worker, so none waits for the next), in dependency order: a task starts
+  when every task it depends on has finished; dependants of a task that did
+  not end done or skipped are reported waiting;
+- holds the claims: workers take them in its name and its `Leases` thread
+  renews them, so a worker that holds the interpreter cannot let them lapse;
+  a worker whose claim another runner took over is stopped;
+- stops a worker whose attempt outlives the job's `time_allowed` and records
+  the window failed ("time limit of 30m reached"); records the window of a
+  worker that died failed with its exit status or signal; starts a
+  replacement and goes on with everything else;
+- retries failed attempts (`retries:`, after `retry_delay` doubling), keeping
+  the claim in between;
+- on an exception (Ctrl-C, or SIGTERM turned into one by the CLI) stops every
+  worker, records their runs abandoned, releases its claims and re-raises.
+
+Workers come from a fork server that has imported weir's own modules but not
+polars (polars must not be forked once loaded), so starting one costs about
+a quarter of a second after the first; see docs/performance.md.
 """
 
 from __future__ import annotations
 
+import contextlib
 import multiprocessing
 import os
+import signal
+import time
+from collections import deque
 from collections.abc import Callable
-from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
-from dataclasses import dataclass
-from pathlib import Path
+from dataclasses import dataclass, field
+from multiprocessing.connection import Connection, wait
 from typing import Any
 
-from runner.execute import Outcome, RunContext, precheck, run_window
+from runner.execute import LOST, Attempt, Outcome, RunContext, precheck, record_failure, run_attempt
+from runner.leases import Leases
 from runner.planner import Task
+from runner.timeutil import short_duration
 
-_worker: dict[str, Any] = {}
-
-
-@dataclass
-class Settings:
-    root: Path
-    ledger_url: str
-    force: bool = False
-
-
-def _context(settings: Settings) -> RunContext:
-    from runner.ledger import Ledger
-    from runner.workspace import load_workspace
-
-    ws = load_workspace(settings.root, thorough=False)
-    return RunContext(ws=ws, ledger=Ledger(settings.ledger_url))
-
-
-def _init_worker(settings: Settings) -> None:
-    _worker["ctx"] = _context(settings)
-    _worker["settings"] = settings
-
-
-def _run_in_worker(job: str, window_key: str) -> dict[str, Any]:
-    ctx: RunContext = _worker["ctx"]
-    settings: Settings = _worker["settings"]
-    window = ctx.ws.cadence(job).window(_key_to_instant(window_key))
-    return run_window(ctx, job, window, force=settings.force).as_dict()
-
-
-def _run_chunk_in_worker(items: list[tuple[str, str]]) -> list[dict[str, Any]]:
-    """Several independent windows in one message: fewer round trips for small windows."""
-    return [_run_in_worker(job, key) for job, key in items]
-
-
-def _key_to_instant(key: str) -> str:
-    return key.replace("Z", "+00:00")
+DEPTH = 2  # attempts queued per worker: the next one is already there when the current one ends
+POLL = 0.5  # longest wait between looks at the stop flag, deadlines and lost claims
+# weir's modules a fork server imports once, so each worker starts without importing them (never polars)
+PRELOAD = ["runner.execute", "runner.ledger", "runner.workspace", "runner.sources", "runner.steps",
+           "runner.sinks", "runner.checks", "runner.fileindex"]
 
 
 def default_workers() -> int:
     return max(1, os.cpu_count() or 1)
 
 
-POOL_STARTUP_SECONDS = 3.0  # about what starting worker processes costs (imports): measured, rounded up
-DEFAULT_WINDOW_SECONDS = 0.2  # a window's guess before any of its job's runs are recorded
-CHUNK = 16  # most windows handed to a worker in one message
+# ---------------------------------------------------------------- the worker side
 
 
-def run_tasks(tasks: list[Task], settings: Settings, workers: int,
+def _worker_main(conn: Connection, ctx: RunContext, env: dict[str, str], cwd: str, threads: int) -> None:
+    """A worker process: run the attempts the supervisor sends, one at a time, telling it what happens."""
+    # Ctrl-C and a service manager's SIGTERM reach the whole process group: the supervisor decides what stops
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    _die_with_parent()
+    _let_fork_server_go()
+    os.environ.clear()
+    os.environ.update(env)
+    os.environ["POLARS_MAX_THREADS"] = str(threads)  # before polars is first imported, in this process
+    os.chdir(cwd)
+    conn.send(("ready", os.getpid()))
+    pending: deque[Any] = deque()
+    while True:
+        if not pending:
+            pending.append(conn.recv())
+        while conn.poll():
+            pending.append(conn.recv())
+        if any(m is not None and m[0] == "stop" for m in pending):
+            for m in pending:
+                if m is not None and m[0] == "run":
+                    conn.send(("dropped", m[1]))
+            pending = deque(m for m in pending if m is None)
+            continue
+        msg = pending.popleft()
+        if msg is None:
+            return
+        _, tid, attempt = msg
+        conn.send(("start", tid))
+        outcome = run_attempt(ctx, attempt,
+                              on_claim=lambda fence, run_id, fp, tid=tid: conn.send(("claimed", tid, fence, run_id, fp)))
+        conn.send(("end", tid, outcome.as_dict()))
+
+
+def _die_with_parent() -> None:
+    """Ask Linux to kill this worker when its parent ends, so no worker outlives a killed supervisor."""
+    with contextlib.suppress(Exception):
+        import ctypes
+
+        ctypes.CDLL(None, use_errno=True).prctl(1, signal.SIGKILL)  # PR_SET_PDEATHSIG (prctl(2))
+    if os.getppid() == 1:
+        os._exit(0)  # the parent is already gone
+
+
+def warm_up() -> None:
+    """Start the fork server now, so that its imports overlap with loading and planning here."""
+    _mp()
+
+
+def _let_fork_server_go() -> None:
+    """Drop this worker's hold on the fork server, so that the server ends with the supervisor.
+
+    A fork server lives while any process holds the write end of its "alive"
+    pipe, and multiprocessing hands one to each child it forks. Without this,
+    a supervisor killed alone would leave its workers (and their hung steps)
+    running; with it the server ends, and the kernel kills its children
+    (PR_SET_PDEATHSIG, set by `_die_with_parent`).
+    """
+    with contextlib.suppress(Exception):
+        from multiprocessing import forkserver
+
+        server = forkserver._forkserver  # noqa: SLF001 - the standard library keeps this fd private
+        if server._forkserver_alive_fd is not None:
+            os.close(server._forkserver_alive_fd)
+            server._forkserver_alive_fd = None
+
+
+def _mp() -> Any:
+    if "forkserver" not in multiprocessing.get_all_start_methods():
+        return multiprocessing.get_context("spawn")
+    mp = multiprocessing.get_context("forkserver")
+    mp.set_forkserver_preload(PRELOAD)
+    _start_fork_server()
+    return mp
+
+
+def _start_fork_server() -> None:
+    """Start the fork server ignoring SIGINT and SIGTERM, which it and its children then keep.
+
+    The fork server sits in this process group, where Ctrl-C and a service
+    manager's SIGTERM arrive too; it must outlive them so that its workers
+    (which it parents, and which die with it) finish or are stopped by this
+    process. Signals ignored at exec stay ignored (POSIX execve), so they are
+    ignored here for the instant the server starts. It ends when this process does.
+    """
+    import threading
+    from multiprocessing import forkserver
+
+    if threading.current_thread() is not threading.main_thread():
+        forkserver.ensure_running()  # signal dispositions can only be changed from the main thread
+        return
+    saved = {sig: signal.signal(sig, signal.SIG_IGN) for sig in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        forkserver.ensure_running()
+    finally:
+        for sig, handler in saved.items():
+            signal.signal(sig, handler)
+
+
+# ---------------------------------------------------------------- the supervisor side
+
+
+@dataclass
+class _Worker:
+    proc: Any
+    conn: Connection
+    queue: list[int] = field(default_factory=list)  # tids sent and not ended, in order
+    current: int | None = None  # the tid it has started
+    started: float = 0.0  # when it started `current` (monotonic)
+    began: bool = False  # it has started an attempt
+    dead: bool = False
+
+
+@dataclass
+class _Flight:
+    """An attempt handed to a worker."""
+
+    task: int
+    attempt: Attempt
+    fence: int | None = None
+    run_id: int | None = None
+    fingerprint: str | None = None
+
+
+def run_tasks(tasks: list[Task], ctx: RunContext, workers: int, force: bool = False,
               on_outcome: Callable[[Task, Outcome], None] | None = None,
-              should_stop: Callable[[], bool] | None = None,
-              context: RunContext | None = None) -> list[Outcome]:
+              should_stop: Callable[[], bool] | None = None, leases: Leases | None = None) -> list[Outcome]:
     """Run `tasks` respecting dependencies; return one Outcome per task, in task order.
 
-    Windows already current are skipped here without a worker. Worker
-    processes start only when enough windows need running at once; until then
-    (and always with one worker) windows run in this process. `should_stop` is
-    polled between windows: when it says so, nothing new starts and the
-    remaining tasks are reported as `not started`.
+    Windows already current are skipped here without a worker. `should_stop`
+    is polled at least twice a second: once it says so, nothing new starts,
+    attempts already running finish, and the remaining tasks are reported as
+    `not started`. `leases` renews the claims (a running one of the same
+    owner, such as the tick lock's; else one is started here).
     """
-    outcomes: list[Outcome | None] = [None] * len(tasks)
-    dependants: dict[int, list[int]] = {i: [] for i in range(len(tasks))}
-    remaining = {i: len(t.deps) for i, t in enumerate(tasks)}
-    for i, t in enumerate(tasks):
-        for d in t.deps:
-            dependants[d].append(i)
-    ready = [i for i, n in remaining.items() if n == 0]
-    ready.reverse()
-    ctx = context or _context(settings)
-
-    def finish(i: int, outcome: Outcome) -> None:
-        outcomes[i] = outcome
-        if on_outcome is not None:
-            on_outcome(tasks[i], outcome)
-        for j in dependants[i]:
-            if outcome.status not in ("done", "skipped"):
-                if outcomes[j] is None:
-                    reason = f"not run: {tasks[i].job} {tasks[i].window.id} {outcome.status}"
-                    finish(j, Outcome(tasks[j].job, tasks[j].window.id, "waiting", reason))
-                continue
-            remaining[j] -= 1
-            if remaining[j] == 0 and outcomes[j] is None:
-                ready.append(j)
-
-    def stopped() -> bool:
-        return should_stop is not None and should_stop()
-
-    estimate = _estimates(ctx, {t.job for t in tasks}) if workers > 1 else {}
-    # only a window recorded done can be current: the others need no fingerprint to know they must run
-    recorded = {job: ctx.ledger.done_keys(job) for job in {t.job for t in tasks}} if not settings.force else {}
-    to_run: list[int] = []
-    prepared: dict[int, Any] = {}
-    running: dict[Future[list[dict[str, Any]]], list[int]] = {}
-    pool: ProcessPoolExecutor | None = None
-    saved_env = os.environ.get("POLARS_MAX_THREADS")
-    try:
-        while (ready or to_run or running) and not (stopped() and not running):
-            while ready:
-                i = ready.pop()
-                if outcomes[i] is not None:
-                    continue
-                t = tasks[i]
-                if settings.force or t.window.key not in recorded[t.job]:
-                    current = False
-                else:
-                    current, prepared[i] = precheck(ctx, t.job, t.window)
-                if current:
-                    finish(i, Outcome(t.job, t.window.id, "skipped", "current: already done with this fingerprint"))
-                else:
-                    to_run.append(i)
-            if stopped():
-                to_run.clear()
-                if not running:
-                    break
-            if pool is None and workers > 1 and len(to_run) > 1 and (
-                    sum(estimate[tasks[i].job] for i in to_run) > POOL_STARTUP_SECONDS):
-                pool = _start_pool(settings, workers)
-            if pool is not None:
-                while to_run and len(running) < workers * 2:
-                    # chunks that keep every worker busy without holding back dependants for long
-                    size = max(1, min(CHUNK, len(to_run) // (workers * 2)))
-                    chunk, to_run = to_run[:size], to_run[size:]
-                    for i in chunk:
-                        prepared.pop(i, None)  # the worker looks for itself
-                    items = [(tasks[i].job, tasks[i].window.key) for i in chunk]
-                    running[pool.submit(_run_chunk_in_worker, items)] = chunk
-                if running:
-                    done, _ = wait(running, return_when=FIRST_COMPLETED)
-                    for fut in done:
-                        chunk = running.pop(fut)
-                        for i, outcome in zip(chunk, _results(fut, [tasks[i] for i in chunk]), strict=True):
-                            finish(i, outcome)
-            elif to_run:
-                i = to_run.pop(0)
-                t = tasks[i]
-                finish(i, run_window(ctx, t.job, t.window, force=settings.force, prepared=prepared.pop(i, None)))
-    except BaseException:
-        if pool is not None:
-            pool.shutdown(wait=False, cancel_futures=True)
-            pool = None
-        raise
-    finally:
-        if pool is not None:
-            pool.shutdown(wait=True)
-        if saved_env is None:
-            os.environ.pop("POLARS_MAX_THREADS", None)
-        else:
-            os.environ["POLARS_MAX_THREADS"] = saved_env
-    return [o or Outcome(t.job, t.window.id, "not started", "stopped before it started")
-            for t, o in zip(tasks, outcomes, strict=True)]
+    return _Supervisor(tasks, ctx, max(1, workers), force, on_outcome, should_stop, leases).run()
 
 
-def _estimates(ctx: RunContext, jobs: set[str]) -> dict[str, float]:
-    """Median recorded seconds per window of each job (a default guess when none ran yet)."""
-    out = {}
-    for job in jobs:
+class _Supervisor:
+    def __init__(self, tasks: list[Task], ctx: RunContext, workers: int, force: bool,
+                 on_outcome: Callable[[Task, Outcome], None] | None, should_stop: Callable[[], bool] | None,
+                 leases: Leases | None):
+        self.tasks, self.ctx, self.max_workers, self.force = tasks, ctx, workers, force
+        self.on_outcome, self.should_stop = on_outcome, should_stop
+        self.own_leases = leases is None
+        self.leases = leases if leases is not None else Leases(ctx.ledger, ctx.owner, ctx.lease)
+        self.outcomes: list[Outcome | None] = [None] * len(tasks)
+        self.dependants: dict[int, list[int]] = {i: [] for i in range(len(tasks))}
+        self.remaining = {i: len(t.deps) for i, t in enumerate(tasks)}
+        for i, t in enumerate(tasks):
+            for d in t.deps:
+                self.dependants[d].append(i)
+        self.ready = [i for i, n in self.remaining.items() if n == 0]
+        self.ready.reverse()
+        self.queue: deque[tuple[int, Attempt]] = deque()
+        self.delayed: list[tuple[float, int, Attempt]] = []  # retries: (due, task, attempt)
+        self.flights: dict[int, _Flight] = {}
+        self.workers: list[_Worker] = []
+        self.spent: dict[int, float] = {}
+        self.last: dict[int, Outcome] = {}  # a task's last failed attempt, while its retry waits
+        self.stopping = False
+        self.next_tid = 0
+        self.recorded: dict[str, set[str]] = {}
+
+    # ------------------------------------------------------------ the loop
+
+    def run(self) -> list[Outcome]:
+        if not self.force:
+            # only a window recorded done can be current: the others need no fingerprint to know they must run
+            self.recorded = {job: self.ctx.ledger.done_keys(job) for job in {t.job for t in self.tasks}}
+        if self.own_leases:
+            self.leases.start()
         try:
-            stats = ctx.ledger.run_stats(job)
-            median = stats["seconds"].median() if stats.height else None
-        except Exception:  # noqa: BLE001 - an estimate is only a hint
-            median = None
-        out[job] = float(median) if median is not None else DEFAULT_WINDOW_SECONDS
-    return out
+            while self._step():
+                pass
+        except BaseException:
+            self._abort()
+            raise
+        finally:
+            self._close()
+        return [o or Outcome(t.job, t.window.id, "not started", "stopped before it started")
+                for t, o in zip(self.tasks, self.outcomes, strict=True)]
 
+    def _step(self) -> bool:
+        """One round: start what can start, wait for news, act on it. False when everything is over."""
+        if not self.stopping and self.should_stop is not None and self.should_stop():
+            self._stop()
+        while True:
+            self._take_ready()
+            self._take_due_retries()
+            self._dispatch()
+            if not self.ready or len(self.queue) >= self._backlog:
+                break  # every ready task is queued, or the workers have enough to do for now
+        if not (self.flights or self.queue or self.delayed or self.ready):
+            return False
+        now = time.monotonic()
+        timeout = POLL
+        for w in self.workers:
+            if w.current is not None:
+                timeout = min(timeout, w.started + self._limit(w.current) - now)
+        if self.delayed:
+            timeout = min(timeout, min(d for d, _, _ in self.delayed) - now)
+        handles: list[Any] = [w.conn for w in self.workers] + [w.proc.sentinel for w in self.workers]
+        if handles:
+            ready = wait(handles, timeout=max(0.0, timeout))
+        else:
+            time.sleep(max(0.0, timeout))  # only a retry's delay to wait for
+            ready = []
+        for w in list(self.workers):
+            if w.conn in ready:
+                self._read(w)
+            if w.proc.sentinel in ready or w.dead:
+                self._read(w)  # whatever it said before it ended
+                self._died(w, self._death_reason(w))
+        self._enforce_limits()
+        self._stop_lost()
+        return True
 
-def _start_pool(settings: Settings, workers: int) -> ProcessPoolExecutor:
-    cores = os.cpu_count() or 1
-    os.environ["POLARS_MAX_THREADS"] = str(max(1, cores // workers))
-    return ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"),
-                               initializer=_init_worker, initargs=(settings,))
+    @property
+    def _backlog(self) -> int:
+        """Attempts kept ready to hand out; prechecking more first would only keep workers waiting."""
+        return 2 * DEPTH * self.max_workers
 
+    def _take_ready(self) -> None:
+        while self.ready and len(self.queue) < self._backlog:
+            i = self.ready.pop()
+            if self.outcomes[i] is not None:
+                continue
+            if self.stopping:
+                continue  # reported `not started`
+            t = self.tasks[i]
+            if not self.force and t.window.key in self.recorded.get(t.job, ()) and precheck(self.ctx, t.job, t.window):
+                self._finish(i, Outcome(t.job, t.window.id, "skipped", "current: already done with this fingerprint"))
+            else:
+                self.queue.append((i, Attempt(t.job, t.window.key, 1, self.force)))
 
-def _results(fut: Future[list[dict[str, Any]]], chunk: list[Task]) -> list[Outcome]:
-    try:
-        return [Outcome(**r) for r in fut.result()]
-    except Exception as exc:  # noqa: BLE001 - a worker died; report it and go on
-        return [Outcome(t.job, t.window.id, "failed", f"worker failed: {type(exc).__name__}: {exc}",
-                        error=str(exc)) for t in chunk]
+    def _take_due_retries(self) -> None:
+        now = time.monotonic()
+        due = [d for d in self.delayed if d[0] <= now or self.stopping]
+        for item in due:
+            self.delayed.remove(item)
+            _, i, attempt = item
+            self._requeue(i, attempt, last=True)
+
+    def _requeue(self, i: int, attempt: Attempt, last: bool = False) -> None:
+        """Queue an attempt again (a retry, or one a dying worker never started); after a stop, drop it.
+
+        A dropped retry gives its claim up and its task keeps its last failure.
+        """
+        if not self.stopping:
+            if last:
+                self.queue.append((i, attempt))
+            else:
+                self.queue.appendleft((i, attempt))
+            return
+        if attempt.fence is not None:
+            with contextlib.suppress(Exception):
+                self.ctx.ledger.release(attempt.job, attempt.window_key, self.ctx.owner)
+            self.leases.forget(attempt.job, attempt.window_key)
+            self._finish(i, self.last[i])
+
+    def _dispatch(self) -> None:
+        while self.queue and not self.stopping:
+            worker = self._free_worker()
+            if worker is None:
+                return
+            i, attempt = self.queue.popleft()
+            tid = self.next_tid
+            self.next_tid += 1
+            self.flights[tid] = _Flight(i, attempt, fence=attempt.fence)
+            try:
+                worker.conn.send(("run", tid, attempt))
+            except OSError:
+                worker.dead = True
+            worker.queue.append(tid)
+
+    def _free_worker(self) -> _Worker | None:
+        alive = [w for w in self.workers if not w.dead]
+        idle = [w for w in alive if not w.queue]
+        if idle:
+            return idle[0]
+        if len(self.workers) < self.max_workers:
+            return self._start_worker()
+        shallow = [w for w in alive if len(w.queue) < DEPTH]
+        return min(shallow, key=lambda w: len(w.queue)) if shallow else None
+
+    def _start_worker(self) -> _Worker:
+        mp = _mp()
+        parent, child = mp.Pipe()
+        threads = max(1, (os.cpu_count() or 1) // self.max_workers)
+        proc = mp.Process(target=_worker_main, name="weir-worker", daemon=True,
+                          args=(child, self.ctx, dict(os.environ), os.getcwd(), threads))
+        proc.start()
+        child.close()
+        worker = _Worker(proc, parent)
+        self.workers.append(worker)
+        return worker
+
+    # ------------------------------------------------------------ news from workers
+
+    def _read(self, w: _Worker) -> None:
+        while True:
+            try:
+                if not w.conn.poll():
+                    return
+                msg = w.conn.recv()
+            except (EOFError, OSError):
+                w.dead = True
+                return
+            kind = msg[0]
+            if kind == "start":
+                w.current, w.started, w.began = msg[1], time.monotonic(), True
+            elif kind == "claimed":
+                _, tid, fence, run_id, fingerprint = msg
+                flight = self.flights[tid]
+                flight.fence, flight.run_id, flight.fingerprint = fence, run_id, fingerprint
+                self.leases.watch(flight.attempt.job, flight.attempt.window_key, fence)
+            elif kind == "end":
+                tid = msg[1]
+                self._left(w, tid)
+                flight = self.flights.pop(tid)
+                self._ended(flight, Outcome(**msg[2]))
+            elif kind == "dropped":
+                self._left(w, msg[1])
+                flight = self.flights.pop(msg[1])
+                self._requeue(flight.task, flight.attempt)
+
+    def _left(self, w: _Worker, tid: int) -> None:
+        if tid in w.queue:
+            w.queue.remove(tid)
+        if w.current == tid:
+            w.current = None
+
+    def _ended(self, flight: _Flight, outcome: Outcome) -> None:
+        """An attempt is over: retry it (keeping its claim), or the task is finished."""
+        i, attempt = flight.task, flight.attempt
+        self.spent[i] = self.spent.get(i, 0.0) + outcome.seconds
+        spec = self.ctx.ws.jobs[attempt.job].spec
+        held = flight.fence if flight.fence is not None else attempt.fence
+        if (outcome.status == "failed" and attempt.number <= spec.retries and held is not None
+                and not self.stopping):
+            delay = spec.retry_delay.total_seconds() * (2 ** (attempt.number - 1))
+            self.last[i] = outcome
+            self.delayed.append((time.monotonic() + delay, i,
+                                 Attempt(attempt.job, attempt.window_key, attempt.number + 1, attempt.force, held)))
+            return
+        self.leases.forget(attempt.job, attempt.window_key)
+        if outcome.status == "failed" and held is not None and attempt.number <= spec.retries:
+            with contextlib.suppress(Exception):  # stopping: the retry will not come, nor will the claim be needed
+                self.ctx.ledger.release(attempt.job, attempt.window_key, self.ctx.owner)
+        outcome.seconds = self.spent[i]
+        self._finish(i, outcome)
+
+    def _finish(self, i: int, outcome: Outcome) -> None:
+        self.outcomes[i] = outcome
+        if self.on_outcome is not None:
+            self.on_outcome(self.tasks[i], outcome)
+        for j in self.dependants[i]:
+            if outcome.status not in ("done", "skipped"):
+                if self.outcomes[j] is None:
+                    t = self.tasks[i]
+                    reason = f"not run: {t.job} {t.window.id} {outcome.status}"
+                    self._finish(j, Outcome(self.tasks[j].job, self.tasks[j].window.id, "waiting", reason))
+                continue
+            self.remaining[j] -= 1
+            if self.remaining[j] == 0 and self.outcomes[j] is None:
+                self.ready.append(j)
+
+    # ------------------------------------------------------------ workers that die, overrun or lose claims
+
+    def _limit(self, tid: int) -> float:
+        return self.ctx.ws.time_allowed(self.flights[tid].attempt.job).total_seconds()
+
+    def _enforce_limits(self) -> None:
+        now = time.monotonic()
+        for w in list(self.workers):
+            if w.current is not None and not w.dead and now - w.started >= self._limit(w.current):
+                limit = self.ctx.ws.time_allowed(self.flights[w.current].attempt.job)
+                self._kill(w)
+                self._died(w, f"time limit of {short_duration(limit)} reached (time_allowed); "
+                              "the worker process running it was stopped")
+
+    def _stop_lost(self) -> None:
+        lost = self.leases.lost()
+        if not lost:
+            return
+        for w in list(self.workers):
+            flight = self.flights.get(w.current) if w.current is not None else None
+            if flight is not None and (flight.attempt.job, flight.attempt.window_key) in lost:
+                self._kill(w)
+                self._died(w, None)
+
+    def _kill(self, w: _Worker) -> None:
+        with contextlib.suppress(Exception):
+            w.proc.kill()
+        w.proc.join(timeout=10)
+        self._read(w)  # news sent before it was stopped (an attempt may have ended just now)
+        w.dead = True
+
+    def _death_reason(self, w: _Worker) -> str:
+        w.proc.join(timeout=10)
+        code = w.proc.exitcode
+        if code is not None and code < 0:
+            try:
+                name = signal.Signals(-code).name
+            except ValueError:
+                name = "unknown signal"
+            extra = "; the system kills processes this way when memory runs out" if -code == signal.SIGKILL else ""
+            return f"the worker process running it was killed by signal {-code} ({name}{extra})"
+        return f"the worker process running it ended with exit status {code}"
+
+    def _died(self, w: _Worker, reason: str | None) -> None:
+        """`w` is gone: its started attempt failed with `reason` (None: its claim was lost); the rest go back."""
+        if w in self.workers:
+            self.workers.remove(w)
+        with contextlib.suppress(Exception):
+            w.conn.close()
+        blamed = w.current
+        if blamed is None and w.queue and not w.began and w.proc.exitcode not in (0, None):
+            blamed = w.queue[0]  # it died before starting anything: its first attempt answers for it
+        for tid in reversed(w.queue):
+            if tid != blamed:
+                flight = self.flights.pop(tid)
+                self._requeue(flight.task, flight.attempt)
+        if blamed is None:
+            return
+        flight = self.flights.pop(blamed)
+        seconds = time.monotonic() - w.started if w.current == blamed else 0.0
+        attempt = flight.attempt
+        if reason is None:
+            if flight.run_id is not None:
+                with contextlib.suppress(Exception):
+                    self.ctx.ledger.abandon_run(flight.run_id, LOST)
+            window_id = self.tasks[flight.task].window.id
+            self.leases.forget(attempt.job, attempt.window_key)
+            self._ended(flight, Outcome(attempt.job, window_id, "claimed", LOST, flight.run_id, seconds=seconds))
+            return
+
+        def claimed(fence: int, run_id: int, fingerprint: str | None) -> None:
+            flight.fence, flight.run_id = fence, run_id
+            self.leases.watch(attempt.job, attempt.window_key, fence)
+
+        outcome = record_failure(self.ctx, attempt, reason, run_id=flight.run_id, fence=flight.fence,
+                                 fingerprint=flight.fingerprint, seconds=seconds, on_claim=claimed)
+        outcome.seconds = seconds
+        self._ended(flight, outcome)
+
+    # ------------------------------------------------------------ stopping
+
+    def _stop(self) -> None:
+        """Start nothing new; attempts already running finish."""
+        self.stopping = True
+        for w in self.workers:
+            with contextlib.suppress(Exception):
+                w.conn.send(("stop",))
+        queued, self.queue = list(self.queue), deque()
+        for i, attempt in queued:
+            self._requeue(i, attempt)
+
+    def _abort(self) -> None:
+        """Interrupted: stop every worker now, record their runs abandoned, release this runner's claims."""
+        for w in self.workers:
+            with contextlib.suppress(Exception):
+                w.proc.kill()  # workers ignore SIGTERM and SIGINT: they wait for this process to decide
+        for w in self.workers:
+            w.proc.join(timeout=10)
+        self.workers.clear()
+        with contextlib.suppress(Exception):
+            self.ctx.ledger.release_claims(self.ctx.owner, "interrupted: its runner was stopped while it ran")
+
+    def _close(self) -> None:
+        if self.own_leases:
+            self.leases.stop()
+        for w in self.workers:
+            with contextlib.suppress(Exception):
+                w.conn.send(None)
+        for w in self.workers:
+            w.proc.join(timeout=10)
+            if w.proc.exitcode is None:
+                with contextlib.suppress(Exception):
+                    w.proc.kill()
+                w.proc.join(timeout=5)
+            with contextlib.suppress(Exception):
+                w.conn.close()
+        self.workers.clear()

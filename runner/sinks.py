@@ -201,7 +201,7 @@ def stale_temporary(name: str, mtime: float, now: float) -> bool:
     Its process, of this host, has ended; or (another host's, or a reused
     process id) it was last written over `STALE_AFTER` seconds ago.
     """
-    from runner.ledger import _gone
+    from runner.leases import process_ended
 
     found = _TMP_NAME.match(name)
     if found is None:
@@ -209,7 +209,7 @@ def stale_temporary(name: str, mtime: float, now: float) -> bool:
     if now - mtime > STALE_AFTER:
         return True
     host = found["host"]
-    return (host is None or host == _host()) and _gone(f"{socket.gethostname()}:{found['pid']}:0")
+    return (host is None or host == _host()) and process_ended(int(found["pid"]))
 
 
 def clean_leftovers(folder: int | str | Path, prefix: str = "", now: float | None = None) -> int:

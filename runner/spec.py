@@ -479,6 +479,16 @@ class JobSpec(_Model):
     recheck: Duration = Field(default=timedelta(days=3), description="plan/tick re-check inputs of windows this recent")
     max_catch_up: int | None = Field(default=None, ge=1, description="most windows of this job one tick runs")
     late_after: Duration | None = Field(default=None, description="inputs newer than end + this are late")
+    time_allowed: Duration | None = Field(
+        default=None, description="how long one attempt at a window may run before it is stopped and fails "
+                                  "(default: the workspace's, see jobs/_settings.yaml)")
+
+    @field_validator("time_allowed")
+    @classmethod
+    def _positive_time(cls, value: timedelta | None) -> timedelta | None:
+        if value is not None and value <= timedelta(0):
+            raise ValueError("time_allowed must be positive")
+        return value
 
     @field_validator("inputs")
     @classmethod
@@ -502,6 +512,39 @@ class JobSpec(_Model):
                     raise ValueError(f"step name {step.name!r} is already an input, step or reserved name")
                 seen.add(step.name.lower())
         return self
+
+
+SETTINGS_FILE = "_settings.yaml"  # in jobs/: settings for every job of a workspace
+DEFAULT_TIME_ALLOWED = timedelta(hours=1)
+DEFAULT_LEASE = timedelta(minutes=2)
+MIN_LEASE = timedelta(seconds=2)
+
+
+class WorkspaceSettings(_Model):
+    """`jobs/_settings.yaml`: settings that hold for every job of the workspace."""
+
+    time_allowed: Duration = Field(
+        default=DEFAULT_TIME_ALLOWED,
+        description="how long one attempt at a window may run before weir stops it and records it failed; "
+                    "a job's own time_allowed: wins")
+    lease: Duration = Field(
+        default=DEFAULT_LEASE,
+        description="how long a runner's claim on a window (and the tick lock) lasts without renewal; "
+                    "renewed every third of it while the runner lives")
+
+    @field_validator("time_allowed")
+    @classmethod
+    def _positive_time(cls, value: timedelta) -> timedelta:
+        if value <= timedelta(0):
+            raise ValueError("time_allowed must be positive")
+        return value
+
+    @field_validator("lease")
+    @classmethod
+    def _long_enough(cls, value: timedelta) -> timedelta:
+        if value < MIN_LEASE:
+            raise ValueError(f"lease must be at least {int(MIN_LEASE.total_seconds())}s")
+        return value
 
 
 _TEMPLATE_FIELDS = {"start", "end"}
@@ -595,25 +638,24 @@ def dotted(path: tuple[str | int, ...]) -> str:
     return ".".join(str(p) for p in path)
 
 
-def load_job(file: Path, display: str | None = None) -> Job:
-    """Load and validate one job file; raise SpecProblems with every problem found."""
-    shown = display or str(file)
+def _read_marked(file: Path, shown: str) -> Marked:
+    """The YAML of `file` with its source marks; SpecProblems when it cannot be read or parsed."""
     try:
         with open(file, "rb") as handle:
             raw = handle.read(MAX_FILE_BYTES + 1)
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
         line, col = _position(raw, exc.start)
-        raise SpecProblems([Problem(shown, line, col, "", f"cannot read job file: not UTF-8 text ({exc.reason})")]) from None
+        raise SpecProblems([Problem(shown, line, col, "", f"cannot read {_kind(file)}: not UTF-8 text ({exc.reason})")]) from None
     except OSError as exc:
-        raise SpecProblems([Problem(shown, 1, 1, "", f"cannot read job file: {exc}")]) from None
+        raise SpecProblems([Problem(shown, 1, 1, "", f"cannot read {_kind(file)}: {exc}")]) from None
     if len(raw) > MAX_FILE_BYTES:
         line, col = _position(raw, MAX_FILE_BYTES)
         raise SpecProblems([Problem(shown, line, col, "", (
-            f"job file longer than {MAX_FILE_BYTES // 1024} KiB, a limit of weir job files; "
+            f"{_kind(file)} longer than {MAX_FILE_BYTES // 1024} KiB, a limit of weir job files; "
             "split the job or move long SQL into a python step"))])
     try:
-        marked = load_marked(text)
+        return load_marked(text)
     except YamlLimit as exc:
         mark = exc.problem_mark
         line, col = (mark.line + 1, mark.column + 1) if mark else (1, 1)
@@ -625,9 +667,23 @@ def load_job(file: Path, display: str | None = None) -> Job:
         raise SpecProblems([Problem(shown, line, col, "", f"malformed YAML: {message}")]) from None
     except yaml.YAMLError as exc:
         raise SpecProblems([Problem(shown, 1, 1, "", f"malformed YAML: {exc}")]) from None
+
+
+def _kind(file: Path) -> str:
+    return "workspace settings file" if file.name == SETTINGS_FILE else "job file"
+
+
+def load_job(file: Path, display: str | None = None) -> Job:
+    """Load and validate one job file; raise SpecProblems with every problem found."""
+    shown = display or str(file)
+    marked = _read_marked(file, shown)
     problems: list[Problem] = []
     name = file.stem
-    if not _JOB_NAME.match(name):
+    if name.startswith("_"):
+        problems.append(Problem(shown, 1, 1, "", (
+            f"job name {name!r} (the file name) starts with _, which is kept for workspace files "
+            f"such as jobs/{SETTINGS_FILE}; rename the file")))
+    elif not _JOB_NAME.match(name):
         problems.append(Problem(shown, 1, 1, "", f"job name {name!r} (the file name) must be letters, digits and _"))
     for path, (line, col) in marked.duplicates:
         problems.append(Problem(shown, line, col, dotted(path), "key given twice; the last one would win silently"))
@@ -644,7 +700,28 @@ def load_job(file: Path, display: str | None = None) -> Job:
     return Job(name=name, spec=spec, file=Path(shown), marks=marked)
 
 
-def _problems_from(exc: ValidationError, marked: Marked, shown: str) -> list[Problem]:
+def load_settings(file: Path, display: str | None = None) -> WorkspaceSettings:
+    """Load and validate `jobs/_settings.yaml` (defaults when it does not exist); SpecProblems when invalid."""
+    if not file.exists():
+        return WorkspaceSettings()
+    shown = display or str(file)
+    marked = _read_marked(file, shown)
+    problems = [Problem(shown, line, col, dotted(path), "key given twice; the last one would win silently")
+                for path, (line, col) in marked.duplicates]
+    data = {} if marked.data is None else marked.data
+    if not isinstance(data, dict):
+        raise SpecProblems([*problems, Problem(shown, 1, 1, "", "workspace settings are a YAML mapping")])
+    try:
+        settings = WorkspaceSettings.model_validate(data)
+    except ValidationError as exc:
+        raise SpecProblems([*problems, *_problems_from(exc, marked, shown, WorkspaceSettings)]) from None
+    if problems:
+        raise SpecProblems(problems)
+    return settings
+
+
+def _problems_from(exc: ValidationError, marked: Marked, shown: str,
+                   model: type[BaseModel] | None = None) -> list[Problem]:
     out: list[Problem] = []
     seen: set[tuple[Any, ...]] = set()
     for error in exc.errors(include_url=False):
@@ -659,7 +736,7 @@ def _problems_from(exc: ValidationError, marked: Marked, shown: str) -> list[Pro
         if kind == "extra_forbidden":
             at_key = True
             field_name = str(loc[-1])
-            allowed = _allowed_keys(error["loc"][:-1])
+            allowed = _allowed_keys(error["loc"][:-1], model or JobSpec)
             close = difflib.get_close_matches(field_name, sorted(allowed), n=1, cutoff=0.6)
             hint = f" (did you mean {close[0]!r}?)" if close else (
                 f" (allowed: {', '.join(sorted(allowed))})" if allowed else ""
@@ -708,9 +785,9 @@ def _data_path(loc: tuple[Any, ...], data: Any, keep_missing: bool = False) -> l
     return path
 
 
-def _allowed_keys(loc: tuple[Any, ...]) -> set[str]:
+def _allowed_keys(loc: tuple[Any, ...], top: type[BaseModel]) -> set[str]:
     """The keys allowed at a pydantic location (for 'did you mean')."""
-    model: Any = JobSpec
+    model: Any = top
     for part in loc:
         model = _child_type(model, part)
         if model is None:

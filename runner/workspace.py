@@ -1,8 +1,9 @@
 """A workspace: a folder with `jobs/*.yaml` and `state/`. Loading and validating it.
 
-`load_workspace` reads every job file, validates each one and the graph
-between them, resolves SQL steps statically, and either returns a
-`Workspace` or raises `SpecProblems` with every problem of the run.
+`load_workspace` reads every job file and the workspace settings
+(`jobs/_settings.yaml`, optional), validates each one and the graph between
+them, resolves SQL steps statically, and either returns a `Workspace` or
+raises `SpecProblems` with every problem of the run.
 """
 
 from __future__ import annotations
@@ -10,12 +11,13 @@ from __future__ import annotations
 import difflib
 import os
 from dataclasses import dataclass, field
+from datetime import timedelta
 from functools import cached_property
 from pathlib import Path
 
 from runner import graph as graphs
 from runner.errors import Problem, SpecProblems, UsageError
-from runner.spec import Job, load_job
+from runner.spec import SETTINGS_FILE, Job, WorkspaceSettings, load_job, load_settings
 from runner.windows import Cadence
 
 JOB_SUFFIXES = (".yaml", ".yml")
@@ -29,6 +31,11 @@ class Workspace:
     jobs: dict[str, Job]
     warnings: list[Problem] = field(default_factory=list)
     resolved_schemas: dict | None = None
+    settings: WorkspaceSettings = field(default_factory=WorkspaceSettings)
+
+    def time_allowed(self, name: str) -> timedelta:
+        """How long one attempt at a window of `name` may run: the job's own limit, else the workspace's."""
+        return self.job(name).spec.time_allowed or self.settings.time_allowed
 
     @cached_property
     def links(self) -> graphs.Links:
@@ -109,7 +116,7 @@ def job_files(root: Path) -> list[Path]:
     if not folder.is_dir():
         return []
     return sorted(p for p in folder.iterdir() if p.suffix in JOB_SUFFIXES and p.is_file()
-                  and not p.name.startswith("."))
+                  and not p.name.startswith(".") and p.name != SETTINGS_FILE)
 
 
 def _display(path: Path) -> str:
@@ -136,6 +143,12 @@ def load_workspace(root: Path | str = ".", resolve_sql: bool = True, thorough: b
         raise UsageError(f"{_display(root)} is not a weir workspace: it has no jobs/ folder (see `weir init`)")
     problems: list[Problem] = []
     jobs: dict[str, Job] = {}
+    settings = WorkspaceSettings()
+    settings_file = root / "jobs" / SETTINGS_FILE
+    try:
+        settings = load_settings(settings_file, display=_display(settings_file))
+    except SpecProblems as exc:
+        problems.extend(exc.problems)
     for file in files:
         try:
             job = load_job(file, display=_display(file))
@@ -160,7 +173,7 @@ def load_workspace(root: Path | str = ".", resolve_sql: bool = True, thorough: b
         from runner.cardinality import batch_advice
 
         warnings.extend(batch_advice(root, jobs))
-    return Workspace(root=root, jobs=jobs, warnings=warnings, resolved_schemas=schemas)
+    return Workspace(root=root, jobs=jobs, warnings=warnings, resolved_schemas=schemas, settings=settings)
 
 
 def _acyclic(jobs: dict[str, Job]) -> bool:

@@ -7,6 +7,7 @@
   a test can kill exactly what it started).
 * `ledger_rows(root, sql)`: rows of the workspace's ledger read with sqlite3.
 * `sha256_file(path)`: hashlib's SHA-256 of a file's bytes.
+* `wait_until(condition, seconds)`: a bounded poll for a subprocess to get going.
 """
 
 from __future__ import annotations
@@ -17,6 +18,7 @@ import os
 import sqlite3
 import subprocess
 import sys
+import time
 from pathlib import Path
 from typing import Any
 
@@ -99,3 +101,13 @@ def output_files(root: Path, folder: str) -> dict[str, bytes]:
     base = root / folder
     return {p.relative_to(root).as_posix(): p.read_bytes()
             for p in sorted(base.rglob("*")) if p.is_file() and not p.name.startswith(".")}
+
+
+def wait_until(condition: Any, seconds: float = 120.0) -> bool:
+    """Poll `condition` every 50 ms for at most `seconds`: a bound that turns a hang into a failure."""
+    deadline = time.monotonic() + seconds
+    while time.monotonic() < deadline:
+        if condition():
+            return True
+        time.sleep(0.05)
+    return bool(condition())

@@ -25,7 +25,8 @@ def test_job_file_reference_names_every_key_of_every_model():
     text = (ROOT / "docs" / "jobs.md").read_text()
     documented = set(re.findall(r"`([a-z_]+)`", text))
     models = [spec.JobSpec, spec.WindowDecl, spec.FileInput, spec.JobInput, spec.DatabaseInput, spec.Column,
-              spec.SqlStep, spec.PythonStep, spec.Output, spec.OutputCheck, spec.RowsCheck, spec.ChangeCheck]
+              spec.SqlStep, spec.PythonStep, spec.Output, spec.OutputCheck, spec.RowsCheck, spec.ChangeCheck,
+              spec.WorkspaceSettings]
     missing = {f"{m.__name__}.{f}" for m in models for f in _field_names(m) if f not in documented}
     assert not missing
 

@@ -276,6 +276,12 @@ class Watcher(threading.Thread):
         self.problems: list[str] = []
 
     def run(self) -> None:
+        try:
+            self._watch()
+        except Exception as exc:  # noqa: BLE001 - a watcher that dies must say why, not stop reading silently
+            self.problems.append(f"watcher stopped: {type(exc).__name__}: {exc}")
+
+    def _watch(self) -> None:
         base = self.root / "state" / "warehouse"
         while not self.stop.is_set():
             for path in list(base.rglob("*.parquet")) if base.exists() else []:
@@ -296,20 +302,28 @@ class Watcher(threading.Thread):
             self.stop.wait(0.02)  # leave the CPU to the runs being killed
 
 
-def _wait_until_running(root: Path, proc: subprocess.Popen[str], timeout: float = 30.0) -> bool:
-    """Poll the ledger until `proc` has started a window (True), or it has ended (False)."""
+def last_run_id(root: Path) -> int:
+    try:
+        return ledger_rows(root, "SELECT COALESCE(MAX(id), 0) FROM weir_runs")[0][0]
+    except sqlite3.OperationalError:
+        return 0  # no ledger yet
+
+
+def _wait_until_running(root: Path, proc: subprocess.Popen[str], after: int, timeout: float = 60.0) -> bool:
+    """Poll the ledger until a run newer than `after` has started (True), or `proc` has ended (False).
+
+    Runs are recorded by `proc`'s worker processes, so they are told apart by id, not pid.
+    """
     deadline = time.monotonic() + timeout
     while proc.poll() is None and time.monotonic() < deadline:
-        try:
-            if ledger_rows(root, "SELECT 1 FROM weir_runs WHERE pid = ? LIMIT 1", (proc.pid,)):
-                return True
-        except sqlite3.OperationalError:
-            pass  # no ledger yet
+        if last_run_id(root) > after:
+            return True
         time.sleep(0.01)
     return proc.poll() is None
 
 
 def test_backfills_killed_at_random_moments_resume_to_a_clean_runs_outputs(tmp_path: Path):
+    """Asserts outcomes, however many of the kills land mid-window on this machine (issue 14)."""
     jobs = {"rides_hourly": rollup_job(), "rides_daily": daily_job(),
             "rides_table": rollup_job(table="rides_per_hour")}
     clean = write_workspace(tmp_path / "clean", jobs)
@@ -322,22 +336,22 @@ def test_backfills_killed_at_random_moments_resume_to_a_clean_runs_outputs(tmp_p
     rng = random.Random(SEED)
     watcher = Watcher(root, "rides_per_hour")
     watcher.start()
-    kills = finished = 0
+    kills = 0
     killed = False
     try:
-        while kills < 20 and kills + finished < 40:
+        for _ in range(24):
             args = ["backfill", *every, "--to", HI, "--at", AT, "--workers", "1"]
             if killed and rng.random() < 0.5:
                 args += ["--from", LO]  # resume what the killed run left
             else:  # a forced re-run from a random hour: there is always work to cut short
                 args += ["--from", f"{LO}T{rng.randrange(24):02d}:00", "--force", "--yes"]
+            before = last_run_id(root)
             proc = spawn(root, *args)
             try:
                 # once it has started running windows, kill it after a random part of a second
-                if _wait_until_running(root, proc):
+                if _wait_until_running(root, proc, before):
                     proc.communicate(timeout=rng.uniform(0.0, 0.6))
                 proc.communicate(timeout=60)
-                finished += 1
                 killed = False
             except subprocess.TimeoutExpired:
                 os.killpg(proc.pid, signal.SIGKILL)  # its own session: exactly what this test started
@@ -347,10 +361,10 @@ def test_backfills_killed_at_random_moments_resume_to_a_clean_runs_outputs(tmp_p
     finally:
         watcher.stop.set()
         watcher.join(10)
-    assert kills >= 20, f"only {kills} runs were still going when their delay ran out"
-    # a run cut short stays `running` until its window finishes in a later run, which marks it `abandoned`
+    # a run cut short stays `running` until its window finishes in a later run, which marks it `abandoned`;
+    # at least one of 24 kills must have cut a window short, or this test would have tested nothing
     interrupted = ledger_rows(root, "SELECT COUNT(*) FROM weir_runs WHERE status IN ('running', 'abandoned')")[0][0]
-    assert interrupted >= 5, "the kills should land while windows are running"
+    assert kills >= 1 and interrupted >= 1, (kills, interrupted)
 
     resumed = spawn(root, "backfill", *every, "--from", LO, "--to", HI, "--at", AT, "--workers", "1", "--json")
     out, err = resumed.communicate(timeout=60)
@@ -420,9 +434,6 @@ def test_two_backfills_started_together_run_each_window_exactly_once(tmp_path: P
     rows = ledger_rows(root, "SELECT window_key, COUNT(*) AS n FROM weir_runs "
                              "WHERE status = 'done' GROUP BY window_key")
     assert len(rows) == windows and {r["n"] for r in rows} == {1}
-    if workers == "1":  # every run was recorded by one of the two processes
-        pids = {r[0] for r in ledger_rows(root, "SELECT DISTINCT pid FROM weir_runs")}
-        assert pids <= {p.pid for p in procs}
     assert ledger_rows(root, "SELECT COUNT(*) FROM weir_runs WHERE status <> 'done'")[0][0] == 0
 
 
@@ -539,10 +550,14 @@ def test_read_only_output_folder_fails_its_windows_and_keeps_their_outputs(tmp_p
     assert set(failed) == {window_id(DAY, h) for h in range(24)}
     history = {h["window_id"]: h for h in cli_json(root, "history", "rides_hourly", "--limit", "1000")
                if h["status"] == "failed"}
-    for wid, message in failed.items():
+    for wid, reason in failed.items():
+        message = history[wid]["error"]
         assert "\n" not in message and "Permission denied" in message, message
         assert message in (root / "state" / "logs" / "rides_hourly" / f"{wid}.log").read_text()
-        assert history[wid]["error"] == message
+        # forced re-runs of windows whose outputs are intact and current: they stay done (hardening item 16)
+        assert reason == f"{message} (the previous output is intact and current: the window stays done)"
+    states = ledger_rows(root, "SELECT state, COUNT(*) FROM weir_windows GROUP BY state")
+    assert {r[0]: r[1] for r in states} == {"done": 47}
 
 
 def test_output_folder_that_cannot_be_created_fails_its_windows_and_the_rest_still_run(tmp_path: Path):
@@ -624,10 +639,17 @@ def _ledger(root: Path):
     return Ledger(f"sqlite:///{ledger_path(root)}")
 
 
+def _this_process() -> str:
+    from runner.ledger import owner_id
+
+    return owner_id()
+
+
 @pytest.mark.parametrize("owner", [
     "depot-server:4242:1",  # another host: its liveness cannot be known, only its expiry
-    f"{socket.gethostname()}:{os.getpid()}:1",  # a live process on this host
-], ids=["other-host", "live-local-process"])
+    f"{socket.gethostname()}:4242:7:0000000000000000:cafe",  # same host name, another machine or container
+    _this_process(),  # a live process of this machine: this test
+], ids=["other-host", "same-name-elsewhere", "live-local-process"])
 def test_window_claimed_by_a_live_owner_is_skipped_as_claimed(rides_ws: Path, owner: str):
     _ledger(rides_ws).claim("rides_hourly", window_key(DAY, 4), owner, ttl=3600)
     report = backfill(rides_ws, "rides_hourly", lo=LO, hi=HI)
@@ -647,9 +669,13 @@ def test_expired_claim_is_taken_over(rides_ws: Path):
 
 
 def test_claim_of_an_ended_process_on_this_host_is_taken_over_before_it_expires(rides_ws: Path):
-    ended = subprocess.Popen([sys.executable, "-c", "pass"])
-    ended.wait()
-    _ledger(rides_ws).claim("rides_hourly", window_key(DAY, 4), f"{socket.gethostname()}:{ended.pid}:1", ttl=3600)
+    # a real process takes the claim in its own name and ends without releasing it
+    script = ("import sys; from runner.ledger import Ledger, owner_id; "
+              "sys.exit(0 if Ledger(sys.argv[1]).claim('rides_hourly', sys.argv[2], owner_id(), 3600) else 1)")
+    subprocess.run([sys.executable, "-c", script, f"sqlite:///{ledger_path(rides_ws)}", window_key(DAY, 4)],
+                   check=True, timeout=60)
+    assert list(_ledger(rides_ws).claimed()) == []  # provably gone: free for every command at once (item 13)
+    assert ledger_rows(rides_ws, "SELECT COUNT(*) FROM weir_claims")[0][0] == 1
     report = backfill(rides_ws, "rides_hourly", lo=LO, hi=HI)
     assert statuses(report) == {"done": 24}
     assert _ledger(rides_ws).claimed() == {}

@@ -16,13 +16,12 @@ import shutil
 import signal
 import sqlite3
 import threading
-import time
 import uuid
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
 import pytest
-from conftest_run import cli, cli_json, spawn
+from conftest_run import cli, cli_json, spawn, wait_until
 from helpers_plan import (
     LISBON,
     at_text,
@@ -393,16 +392,6 @@ def _lines(stream, sink: list[str]) -> None:
         sink.append(line.rstrip("\n"))
 
 
-def _wait_for(condition, seconds: float = 60.0) -> bool:
-    """A bounded wait for a subprocess to get going (polls every 50 ms)."""
-    deadline = time.monotonic() + seconds
-    while time.monotonic() < deadline:
-        if condition():
-            return True
-        time.sleep(0.05)
-    return condition()
-
-
 def _done_count(root: Path) -> int:
     """Done runs in the ledger so far (sqlite3); 0 while the ledger is not created yet."""
     if not ledger_file(root).exists():
@@ -423,7 +412,7 @@ def serve_until(root: Path, ready) -> tuple[int, list[str], str]:
     try:
         reader = threading.Thread(target=_lines, args=(proc.stdout, out), daemon=True)
         reader.start()
-        assert _wait_for(lambda: ready(out) or proc.poll() is not None), "serve did not get going"
+        assert wait_until(lambda: ready(out) or proc.poll() is not None, 60), "serve did not get going"
         assert proc.poll() is None, proc.stderr.read()
         os.killpg(proc.pid, signal.SIGTERM)
         proc.wait(timeout=120)

@@ -1,6 +1,6 @@
 """Benchmark: one window over many small CSV files (run by hand; not collected by pytest).
 
-    python tests/bench/bench_inputs.py [--files 20000] [--repeats 3] [--compare DIR]
+    python tests/bench/bench_inputs.py [--files 20000] [--repeats 3] [--baseline DIR]
 
 Hardening issue 9, item 5: one window over 20,000 one-row CSV files took 580 s
 and 2.5 GB in `weir run`. Whole processes, side by side and interleaved, best
@@ -10,8 +10,8 @@ of N, wall time and peak resident memory (wait4's rusage of each child):
   - `weir run` of a job without a schema;
   - `weir run` of a job with a schema and a time column (each row cast,
     checked and kept to the window);
-  - with --compare DIR, the same two `weir run`s from another checkout (e.g.
-    the main branch), given --compare-timeout seconds each.
+  - with --baseline DIR, the same two `weir run`s from another checkout (e.g.
+    the main branch), given --baseline-timeout seconds each.
 
 The files hold invented card payments (`P00000001,2026-01-01T04:12:00Z,17.50`)
 and are written once under --dir (default /tmp/weir-bench).
@@ -95,8 +95,8 @@ def main() -> None:
     parser.add_argument("--dir", type=Path, default=Path("/tmp/weir-bench"))
     parser.add_argument("--files", type=int, default=20_000)
     parser.add_argument("--repeats", type=int, default=3)
-    parser.add_argument("--compare", type=Path, help="another checkout whose `weir run` to time beside this one")
-    parser.add_argument("--compare-timeout", type=float, default=120.0)
+    parser.add_argument("--baseline", type=Path, help="another checkout whose `weir run` to time beside this one")
+    parser.add_argument("--baseline-timeout", type=float, default=120.0)
     args = parser.parse_args()
     ws = args.dir / f"small-files-{args.files}"
     (ws / "jobs").mkdir(parents=True, exist_ok=True)
@@ -113,9 +113,9 @@ def main() -> None:
     for job in ("pay_plain", "pay_checked"):
         cmd = [*WEIR, "-C", str(ws), "run", job, "--window", "2026-01-01", "--force"]
         runs[f"weir run, {'no schema' if job == 'pay_plain' else 'schema and time column'}"] = (cmd, here)
-        if args.compare is not None:
-            runs[f"weir run ({args.compare}), {'no schema' if job == 'pay_plain' else 'schema'}"] = (
-                cmd, args.compare.resolve())
+        if args.baseline is not None:
+            runs[f"weir run ({args.baseline}), {'no schema' if job == 'pay_plain' else 'schema'}"] = (
+                cmd, args.baseline.resolve())
     results: dict[str, list[tuple[float, float] | None]] = {k: [] for k in runs}
     for i in range(args.repeats):
         for name, (cmd, checkout) in runs.items():
@@ -123,7 +123,7 @@ def main() -> None:
             if checkout == here:
                 results[name].append(measure(cmd, cwd=args.dir, env=env))
             elif not results[name] or results[name][-1] is not None:
-                results[name].append(measure_or_timeout(cmd, args.dir, env, args.compare_timeout))
+                results[name].append(measure_or_timeout(cmd, args.dir, env, args.baseline_timeout))
             last = results[name][-1]
             shown = "timed out" if last is None else f"{last[0]:.2f}s {last[1]:.0f} MB"
             print(f"  round {i + 1}: {name}: {shown}", flush=True)
@@ -135,7 +135,7 @@ def main() -> None:
     for name, vals in results.items():
         done = [v for v in vals if v is not None]
         if not done:
-            print(f"| {name} | over {args.compare_timeout:.0f} s | | |")
+            print(f"| {name} | over {args.baseline_timeout:.0f} s | | |")
             continue
         wall, rss = min(w for w, _ in done), min(m for _, m in done)
         print(f"| {name} | {wall:.2f} s | {wall / base:.2f}x | {rss:.0f} MB |")
