@@ -21,7 +21,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from conftest_run import backfill, cli, ledger_rows, only_window
+from conftest_run import cli, ledger_rows, only_window
 from helpers_data import write_workspace
 
 pq = pytest.importorskip("pyarrow.parquet")
@@ -251,6 +251,18 @@ def test_bad_rows_are_counted_once_with_a_key_read_in_two_passes(tmp_path: Path)
     assert (run["rows_read"], run["rows_rejected"]) == (5, 1)
 
 
+def run_here(root: Path, job_name: str, days: list[str], force: bool = False) -> list[str]:
+    """Run windows in this process, one after the other as one worker process runs them (weir's own runs
+    happen in worker processes, out of reach of a test's monkeypatching); their statuses."""
+    from runner import api
+    from runner.execute import Attempt, RunContext, run_attempt
+
+    ws = api.workspace(root)
+    ctx = RunContext(ws=ws, ledger=api.open_ledger(root))
+    cad = ws.cadence(job_name)
+    return [run_attempt(ctx, Attempt(job_name, cad.window(day).key, force=force)).status for day in days]
+
+
 def test_a_file_is_examined_once_per_process_whatever_reads_it(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
     """Hardening item 7 (brief): a file's bad rows are found once per run, not once per consumer:
     a lookup file read by both daily windows is examined once."""
@@ -267,8 +279,7 @@ def test_a_file_is_examined_once_per_process_whatever_reads_it(tmp_path: Path, m
 
     monkeypatch.setattr(inputfiles._Scan, "run", counted)
     inputfiles._CACHE.items.clear()
-    report = backfill(root, "rides_in", lo="2026-03-22", hi="2026-03-24")  # in this process, one worker
-    assert [w["status"] for w in report["windows"]] == ["done", "done"]
+    assert run_here(root, "rides_in", ["2026-03-22", "2026-03-23"]) == ["done", "done"]
     assert len(examined) == 1
     assert [r["rows_rejected"] for r in ledger_rows(root, "SELECT rows_rejected FROM weir_runs")] == [1, 1]
 
@@ -292,13 +303,13 @@ def test_a_large_clean_file_is_checked_once_across_runs_and_again_once_it_change
     monkeypatch.setattr(inputfiles, "REMEMBER", 0)  # remember files of every size
     for _ in range(2):
         inputfiles._CACHE.items.clear()  # a new process would start without it
-        assert backfill(root, "rides_in", lo=DAY, hi=NEXT, extra=("--force", "--yes"))["windows"][0]["status"] == "done"
+        assert run_here(root, "rides_in", [DAY], force=True) == ["done"]
     assert checked == ["x"]
     assert (root / "state" / "input-checks.sqlite").exists()
     with open(root / LANDING / "rides.csv", "ab") as fh:
         fh.write(b"R0000005,2026-03-22T10:13:00Z\n")  # the same file, now with a broken row
     inputfiles._CACHE.items.clear()
-    assert run_day(root)["status"] == "done"
+    assert run_here(root, "rides_in", [DAY], force=True) == ["done"]
     assert checked == ["x", "x"]
     assert [(b["source_row"], b["reason"]) for b in rejected(root)] == [(5, "2 fields, the header has 5")]
 
