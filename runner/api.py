@@ -12,10 +12,10 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
+from runner.engine.loading import Workspace, load_workspace
 from runner.errors import UsageError, WeirError
-from runner.spec import DatabaseInput, FileInput, JobInput
-from runner.timeutil import BadValue, format_duration, format_instant, format_utc, parse_utc
-from runner.workspace import Workspace, load_workspace
+from runner.model.spec import DatabaseInput, FileInput, JobInput
+from runner.model.timeutil import BadValue, format_duration, format_instant, format_utc, parse_utc
 
 
 def workspace(root: Path | str = ".") -> Workspace:
@@ -50,7 +50,7 @@ def describe_input(name: str, source: Any) -> str:
     if isinstance(source, JobInput):
         shift = f", lag {source.lag}" if source.lag else ""
         if source.lookback:
-            from runner.timeutil import short_duration
+            from runner.model.timeutil import short_duration
 
             shift = f", lookback {short_duration(source.lookback)}"
         return f"{name}: job {source.job}{shift}"
@@ -118,7 +118,7 @@ def windows(ws: Workspace, job: str, lo: datetime | None, hi: datetime | None, a
 
 def open_ledger(root: Path | str, url: str | None = None, create: bool = True):
     """The ledger of a workspace (default `state/ledger.sqlite` inside it)."""
-    from runner.ledger import Ledger, default_url
+    from runner.io.ledger.store import Ledger, default_url
 
     return Ledger(url or default_url(Path(root).resolve()), create=create)
 
@@ -137,10 +137,10 @@ def find_window(ws: Workspace, job: str, window_id: str):
 def run(root: Path | str, job: str, window_id: str, ledger_url: str | None = None, force: bool = False,
         at: datetime | None = None):
     """Run one window of `job` (skipped when current unless `force`) in a worker process. Returns an Outcome."""
-    from runner.execute import Outcome, RunContext
-    from runner.planner import Task
-    from runner.pool import run_tasks, warm_up
-    from runner.sinks import sweep_temporaries
+    from runner.core.planner import Task
+    from runner.engine.pool import run_tasks, warm_up
+    from runner.engine.window import Outcome, RunContext
+    from runner.io.outputs import sweep_temporaries
 
     warm_up()
     ws = load_workspace(root, thorough=False)
@@ -176,8 +176,7 @@ class BackfillResult:
 def plan_backfill(ws: Workspace, jobs: list[str], lo: datetime | None, hi: datetime | None, at: datetime,
                   downstream: bool = False):
     """The backfill's tasks (pure planning; nothing runs)."""
-    from runner import planner
-
+    from runner.core import planner
     return planner.backfill(ws, jobs, lo, hi, at, downstream=downstream)
 
 
@@ -201,7 +200,7 @@ def backfill(root: Path | str, jobs: list[str], lo: str | None, hi: str | None, 
     `on_plan(tasks, replaced)` is called before anything runs (so a caller can
     warn or confirm); `on_outcome(task, outcome)` after each window.
     """
-    from runner.pool import default_workers, run_tasks, warm_up
+    from runner.engine.pool import default_workers, run_tasks, warm_up
 
     warm_up()
     ws = load_workspace(root, thorough=False)
@@ -217,8 +216,8 @@ def backfill(root: Path | str, jobs: list[str], lo: str | None, hi: str | None, 
     replaced = existing_outputs(ws, ledger, plan.tasks) if force else 0
     if on_plan is not None and on_plan(plan.tasks, replaced) is False:
         return BackfillResult([], plan.not_due, replaced)
-    from runner.execute import RunContext
-    from runner.sinks import sweep_temporaries
+    from runner.engine.window import RunContext
+    from runner.io.outputs import sweep_temporaries
 
     sweep_temporaries(ws, at)
     outcomes = run_tasks(plan.tasks, RunContext(ws=ws, ledger=ledger), workers or default_workers(), force=force,
@@ -250,7 +249,7 @@ def history(root: Path | str, job: str, window_id: str | None = None, ledger_url
 
 
 def _survey(ws: Workspace, ledger, at: datetime, jobs: list[str] | None, recheck_all: bool = False):
-    from runner.status import survey
+    from runner.engine.survey import survey
 
     return survey(ws, ledger, at, jobs, recheck_all)
 
@@ -262,7 +261,7 @@ def _item(item) -> dict[str, Any]:
 
 def plan(root: Path | str, jobs: list[str], at: datetime, ledger_url: str | None = None) -> list[dict[str, Any]]:
     """Per job in dependency order: due windows (missing, failed with retries left, stale) and waiting ones."""
-    from runner.planner import job_plans
+    from runner.core.planner import job_plans
 
     ws = load_workspace(root, thorough=False)
     ledger = open_ledger(ws.root, ledger_url, create=False)
@@ -304,12 +303,12 @@ class TickResult:
 def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers: int | None = None,
          should_stop=None, on_outcome=None, ws: Workspace | None = None) -> TickResult:
     """Plan, then run what is due (oldest first, `max_catch_up` per job), one tick per workspace at a time."""
-    from runner import gate
-    from runner.execute import RunContext, producer_windows
-    from runner.ledger import HeldLock, owner_id
-    from runner.planner import job_plans, tasks_for
-    from runner.pool import run_tasks
-    from runner.sinks import sweep_temporaries
+    from runner.core.planner import job_plans, tasks_for
+    from runner.engine import gate
+    from runner.engine.pool import run_tasks
+    from runner.engine.window import RunContext, producer_windows
+    from runner.io.ledger.store import HeldLock, owner_id
+    from runner.io.outputs import sweep_temporaries
 
     ws = ws or load_workspace(root, thorough=False)
     watch = _gate_watch(ws)
@@ -351,7 +350,7 @@ def stale(root: Path | str, jobs: list[str], at: datetime, ledger_url: str | Non
     """Every done window whose fingerprint differs from now, by component; grouped ranges and every window."""
     import polars as pl
 
-    from runner.planner import stale_ranges
+    from runner.core.planner import stale_ranges
 
     ws = load_workspace(root, thorough=False)
     ledger = open_ledger(ws.root, ledger_url, create=False)
@@ -370,9 +369,9 @@ def why(root: Path | str, job: str, window_id: str, at: datetime, ledger_url: st
     """One window explained: state, what changed since its recorded run, lateness, last run figures."""
     import polars as pl
 
-    from runner import explain
-    from runner.execute import prepare, spec_and_code
-    from runner.planner import parse_run_time
+    from runner.core import explain
+    from runner.core.planner import parse_run_time
+    from runner.engine.window import prepare, spec_and_code
 
     ws = load_workspace(root, thorough=False)
     ws.job(job)
@@ -384,7 +383,7 @@ def why(root: Path | str, job: str, window_id: str, at: datetime, ledger_url: st
     if window.end + cad.settle > at:
         out.update(state="not due", reason=f"due at {format_instant(window.end + cad.settle, cad.tz)}")
         return out
-    from runner.status import survey
+    from runner.engine.survey import survey
 
     surveyed = survey(ws, ledger, at, [job], recheck_all=True, extras=True)
     if job in surveyed.unplanned:
@@ -438,7 +437,7 @@ def why(root: Path | str, job: str, window_id: str, at: datetime, ledger_url: st
 
 
 def _context(ws: Workspace, ledger):
-    from runner.execute import RunContext
+    from runner.engine.window import RunContext
 
     return RunContext(ws=ws, ledger=ledger)
 
@@ -448,7 +447,7 @@ def impact(root: Path | str, at: datetime, ledger_url: str | None = None, worker
     """Per job: how many done windows the current job files would recompute, by reason, and how long."""
     import polars as pl
 
-    from runner.pool import default_workers
+    from runner.engine.pool import default_workers
 
     ws = load_workspace(root, thorough=False)
     ledger = open_ledger(ws.root, ledger_url, create=False)
@@ -513,9 +512,9 @@ def _verify_output(ws: Workspace, job: str, row: dict[str, Any]) -> tuple[str | 
     """One done window's output against the ledger: (None | missing | changed | unreadable, detail)."""
     import sqlalchemy as sa
 
-    from runner.paths import database_url
-    from runner.sinks import read_table_digest
-    from runner.sources import file_sha256, table_rows
+    from runner.core.paths import database_url
+    from runner.io.outputs import read_table_digest
+    from runner.io.readers import file_sha256, table_rows
 
     out = ws.jobs[job].spec.output
     if out.path is not None:
@@ -554,9 +553,9 @@ def _dependency_sorted(ws: Workspace, items: list) -> list:
 
 def _gate_watch(ws: Workspace) -> tuple[list[str], list[str]] | None:
     """The input templates and python step module files the tick gate watches (None: cannot watch)."""
-    from runner.spec import FileInput as _FileInput
-    from runner.spec import PythonStep
-    from runner.steps import StepError, _module_file
+    from runner.engine.steps import StepError, _module_file
+    from runner.model.spec import FileInput as _FileInput
+    from runner.model.spec import PythonStep
 
     templates = sorted({s.files for j in ws.jobs.values() for s in j.spec.inputs.values()
                         if isinstance(s, _FileInput)})
@@ -572,16 +571,15 @@ def _gate_watch(ws: Workspace) -> tuple[list[str], list[str]] | None:
 
 
 def _gate_files(ws: Workspace, watch: tuple[list[str], list[str]] | None) -> str | None:
-    from runner import gate
-
+    from runner.engine import gate
     return gate.observe_files(ws.root, *watch) if watch is not None else None
 
 
 def _update_gate(ws: Workspace, ledger_url: str | None, assessed, at: datetime,
                  watch: tuple[list[str], list[str]] | None, seen: str | None) -> None:
     """Write the tick gate after a tick that found nothing due (`assessed`), else remove it."""
-    from runner import gate
-    from runner.planner import next_change
+    from runner.core.planner import next_change
+    from runner.engine import gate
 
     if assessed is None or watch is None:
         gate.clear(ws.root)
@@ -595,8 +593,7 @@ def _update_gate(ws: Workspace, ledger_url: str | None, assessed, at: datetime,
 def demo(root: Path | str, now: datetime, ledger_url: str | None = None, workers: int | None = None,
          on_outcome=None, on_plan=None):
     """Write the demo's landing data (unchanged files are left alone) and backfill every demo job."""
-    from runner import demo as scenario
-
+    from runner.scaffold import demo as scenario
     root = Path(root).resolve()
     missing = scenario.missing_jobs(root)
     if missing:
@@ -675,7 +672,7 @@ def init(target: Path | str, now: datetime) -> list[str]:
 
 def advise(root: Path | str, jobs: list[str], ledger_url: str | None = None) -> list[dict[str, Any]]:
     """Per job: rows and seconds per window (median, p95), overhead share, and suggestions."""
-    from runner.advise import advise_job
+    from runner.core.advice import advise_job
 
     ws = load_workspace(root, thorough=False)
     ledger = open_ledger(ws.root, ledger_url, create=False)

@@ -271,8 +271,7 @@ def example_workspace(tmp_path_factory: Any, dest: Path) -> Path:
     """
     global _template
     if _template is None:
-        from runner import demo
-
+        from runner.scaffold import demo
         base = tmp_path_factory.mktemp("examples") / "ws"
         (base / "jobs").mkdir(parents=True)
         (base / "state").mkdir()

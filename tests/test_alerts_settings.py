@@ -15,7 +15,7 @@ import pytest
 
 from runner.errors import SpecProblems
 from runner.model.alerting import AlertSettings, Destination, EventKind, load_alert_settings
-from runner.yamlfile import load_marked
+from runner.model.yamlfile import load_marked
 
 ROOT = Path(__file__).resolve().parent.parent
 FILE = "jobs/_settings.yaml"

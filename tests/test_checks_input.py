@@ -271,8 +271,8 @@ def _rfc3339(moment: datetime, offset_minutes: int, digits: int, zulu: bool, sep
 def test_any_rfc3339_timestamp_reads_as_datetime_fromisoformat_reads_it(items, sampled):
     import polars as pl
 
-    from runner.checks import apply_fast, cast_frame, parse_datetime, plan_casts
-    from runner.spec import Column
+    from runner.io.casts import apply_fast, cast_frame, parse_datetime, plan_casts
+    from runner.model.spec import Column
 
     texts = [_rfc3339(m, off, d, z, sep) for m, off, d, z, sep in items]
     frame = pl.DataFrame({"t": texts})

@@ -8,7 +8,7 @@ from pathlib import Path
 import clidoc
 from pydantic import BaseModel
 
-from runner import spec
+from runner.model import spec
 
 ROOT = Path(__file__).resolve().parent.parent
 

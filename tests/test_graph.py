@@ -11,10 +11,10 @@ from zoneinfo import ZoneInfo
 
 import pytest
 
+from runner.core.graph import build_graph, downstream, order, render, upstream_windows
+from runner.engine.loading import load_workspace
 from runner.errors import SpecProblems
-from runner.graph import build_graph, downstream, order, render, upstream_windows
-from runner.spec import JobInput, load_job
-from runner.workspace import load_workspace
+from runner.model.spec import JobInput, load_job
 
 ROOT = Path(__file__).resolve().parent.parent
 

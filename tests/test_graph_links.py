@@ -7,7 +7,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from runner.graph import order_links, reach
+from runner.core.graph import order_links, reach
 
 NAMES = [f"job_{c}" for c in "abcdefghij"]
 

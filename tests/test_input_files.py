@@ -255,7 +255,7 @@ def run_here(root: Path, job_name: str, days: list[str], force: bool = False) ->
     """Run windows in this process, one after the other as one worker process runs them (weir's own runs
     happen in worker processes, out of reach of a test's monkeypatching); their statuses."""
     from runner import api
-    from runner.execute import Attempt, RunContext, run_attempt
+    from runner.engine.window import Attempt, RunContext, run_attempt
 
     ws = api.workspace(root)
     ctx = RunContext(ws=ws, ledger=api.open_ledger(root))
@@ -266,8 +266,7 @@ def run_here(root: Path, job_name: str, days: list[str], force: bool = False) ->
 def test_a_file_is_examined_once_per_process_whatever_reads_it(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
     """Hardening item 7 (brief): a file's bad rows are found once per run, not once per consumer:
     a lookup file read by both daily windows is examined once."""
-    from runner import inputfiles
-
+    from runner.io import inputfiles
     data = HEADER + b"\n".join(ROWS) + b"\nR0000005,2026-03-22T10:13:00Z\n"
     root = workspace(tmp_path, job(files=f"{LANDING}/lookup.csv"), {"lookup.csv": data})
     examined: list[int] = []
@@ -288,8 +287,7 @@ def test_a_large_clean_file_is_checked_once_across_runs_and_again_once_it_change
         tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
     """Hardening item 7 (its cost): a clean file's verdict is remembered by version (state/input-checks.sqlite),
     so re-runs over unchanged landing files skip the check; a changed file is checked again."""
-    from runner import inputfiles
-
+    from runner.io import inputfiles
     data = HEADER + b"\n".join(ROWS) + b"\n"
     root = workspace(tmp_path, job(), {"rides.csv": data})
     checked: list[str] = []
@@ -589,9 +587,9 @@ def test_the_plan_over_many_small_files_does_not_grow_with_their_number(tmp_path
     from datetime import UTC, datetime
     from zoneinfo import ZoneInfo
 
-    from runner.sources import InputStats, file_frame, find_files
-    from runner.spec import FileInput
-    from runner.windows import Window
+    from runner.core.windows import Window
+    from runner.io.readers import InputStats, file_frame, find_files
+    from runner.model.spec import FileInput
 
     source = FileInput.model_validate({"files": f"{LANDING}/*.csv", "schema": {"ride_id": "str", "amount": "float"},
                                        "on_bad_rows": "quarantine"})

@@ -34,10 +34,10 @@ from helpers_data import write_workspace
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from runner import inputfiles
-from runner.sources import InputStats, file_frame, find_files
-from runner.spec import FileInput
-from runner.windows import Window
+from runner.core.windows import Window
+from runner.io import inputfiles
+from runner.io.readers import InputStats, file_frame, find_files
+from runner.model.spec import FileInput
 
 HEADER = ["ride_id", "zone", "note"]
 WINDOW = Window(datetime(2026, 3, 22, tzinfo=UTC), datetime(2026, 3, 23, tzinfo=UTC), ZoneInfo("UTC"))

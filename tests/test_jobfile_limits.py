@@ -28,8 +28,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from runner.errors import SpecProblems
-from runner.spec import MAX_FILE_BYTES, load_job
-from runner.yamlfile import MAX_ALIAS_VALUES, MAX_DEPTH, MAX_VALUES
+from runner.model.spec import MAX_FILE_BYTES, load_job
+from runner.model.yamlfile import MAX_ALIAS_VALUES, MAX_DEPTH, MAX_VALUES
 
 LINE = re.compile(r"^(?P<file>\S+\.ya?ml):(?P<line>\d+):(?P<col>\d+): (?P<rest>.*)$")
 
@@ -168,7 +168,7 @@ def test_resolving_many_steps_registers_each_table_once_per_step_not_every_earli
     Counted, not timed: the frames handed to polars' SQLContext over the whole check.
     """
 
-    from runner.workspace import load_workspace
+    from runner.engine.loading import load_workspace
 
     steps = "".join(f"  - name: s{i}\n    sql: SELECT merchant, n FROM {'s' + str(i - 1) if i else 'pay'}\n"
                     for i in range(1000))
@@ -185,9 +185,9 @@ def test_resolving_many_steps_registers_each_table_once_per_step_not_every_earli
 def test_running_many_steps_gives_each_step_only_the_tables_it_reads(tmp_path, registered):
     """Hardening item 8: the run built a SQLContext over every earlier step for each step (quadratic)."""
 
-    from runner.spec import JobSpec
-    from runner.steps import build
-    from runner.windows import Cadence
+    from runner.core.windows import Cadence
+    from runner.engine.steps import build
+    from runner.model.spec import JobSpec
 
     spec = JobSpec.model_validate({
         "window": {"every": "1h", "start": "2026-01-01T00:00"},

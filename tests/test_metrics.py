@@ -199,10 +199,10 @@ def test_metrics_of_a_workspace_that_never_ran_have_no_last_success(tmp_path: Pa
 
 def test_metrics_on_their_own_say_what_the_reports_metrics_say(arranged: dict[str, Any]):
     # `metrics_text` without the page's data takes a lighter path (no drawing); the figures must not differ
-    from runner.ledger import Ledger, default_url
+    from runner.engine.loading import load_workspace
+    from runner.io.ledger.store import Ledger, default_url
     from runner.report.data import collect
     from runner.report.metrics import metrics_text
-    from runner.workspace import load_workspace
 
     ws = load_workspace(arranged["root"], thorough=False)
     ledger = Ledger(default_url(ws.root), create=False)

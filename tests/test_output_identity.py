@@ -181,8 +181,8 @@ def test_a_file_output_onto_a_table_outputs_database_is_refused(tmp_path: Path):
 
 def test_checking_outputs_renders_a_plain_template_vectorized_not_window_by_window(tmp_path: Path, monkeypatch):
     """Hardening item 6: a year of windows is compared without rendering each window in Python."""
-    from runner import graph, paths
-    from runner.spec import load_job
+    from runner.core import graph, paths
+    from runner.model.spec import load_job
 
     root = workspace(tmp_path / "ws", {
         "hourly_a": file_job("state/out/{start:%F/%H}.csv", "{every: 1h, start: 2026-01-01, end: 2027-01-01}"),
@@ -258,8 +258,8 @@ def test_outputs_rendered_for_many_windows_at_once_equal_pythons_strftime(templa
     strftime, through Python's datetime, window by window (Lisbon, across the 2026 clock changes)."""
     from zoneinfo import ZoneInfo
 
-    from runner.paths import output_paths
-    from runner.windows import Cadence
+    from runner.core.paths import output_paths
+    from runner.core.windows import Cadence
 
     lisbon = ZoneInfo("Europe/Lisbon")
     cad = Cadence("1h", None, lisbon, datetime(2026, 3, 28, tzinfo=lisbon), datetime(2026, 10, 27, tzinfo=lisbon))

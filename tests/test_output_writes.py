@@ -91,7 +91,7 @@ def test_a_log_folder_linked_outside_the_workspace_receives_no_log(tmp_path: Pat
 LEAVE_A_TEMPORARY = """
 import os, sys
 from pathlib import Path
-from runner.sinks import temporary_name
+from runner.io.outputs import temporary_name
 folder = Path(sys.argv[1])
 (folder / temporary_name(sys.argv[2])).write_bytes(b"PAR1 half a file")
 os._exit(9)  # a writer that died mid-write: nothing tidies up after it
@@ -118,7 +118,7 @@ def test_temporary_files_of_dead_writers_are_swept_when_a_run_or_tick_starts(tmp
     assert crashed.returncode == 9
     (dead,) = [p for p in folder.iterdir() if p.name.startswith(".")]
     # weir's own name, but of a writer that is alive (this process) or of another host, recently: kept
-    from runner.sinks import temporary_name
+    from runner.io.outputs import temporary_name
 
     alive = folder / temporary_name("2026-03-28T06.parquet")
     alive.write_bytes(b"PAR1 being written")

@@ -243,7 +243,7 @@ def set_failure(root, key: str, finished_at: str, failures: int) -> None:
 
 
 def test_a_window_claimed_by_another_process_is_running_and_neither_due_nor_run(pair):
-    from runner.ledger import Ledger, default_url
+    from runner.io.ledger.store import Ledger, default_url
 
     for h in HOURS:
         land_hour(pair, h)

@@ -65,8 +65,7 @@ def test_one_job_that_cannot_be_planned_does_not_stop_the_others(make_workspace,
                           'output: {path: "state/reader/{start:%Y-%m-%d}.csv"}\n',
     })
     _land(root, "in/2026-01-01.csv", "in/2026-01-02.csv")
-    from runner import planner
-
+    from runner.core import planner
     real = planner.assess_job
 
     def failing(ws, job, *args, **kwargs):

@@ -526,8 +526,8 @@ def test_numbers_are_encoded_as_base64_vlq():
 def test_month_ticks_follow_the_calendar_and_no_label_passes_the_right_edge():
     import re
 
+    from runner.model.timeutil import to_us
     from runner.report.svg import axis_labels, text_width, ticks
-    from runner.timeutil import to_us
 
     zone = ZoneInfo(TZ)
     lo, hi = datetime(2025, 8, 10, tzinfo=zone), datetime(2025, 11, 3, tzinfo=zone)
@@ -552,8 +552,8 @@ def test_overdue_windows_are_those_past_the_deadline_and_not_done():
     """Issue 15, deadlines: at a clock past the deadline exactly the windows past it are overdue."""
     import polars as pl
 
+    from runner.model.timeutil import to_us
     from runner.report.data import with_shown_states
-    from runner.timeutil import to_us
 
     zone = ZoneInfo(TZ)
     days = [date(2026, 3, 28) + timedelta(days=i) for i in range(5)]

@@ -224,7 +224,7 @@ def test_the_fork_server_of_workers_never_loads_polars():
     (a process must not fork once polars has started its threads)."""
     import sys
 
-    script = ("import importlib, sys; from runner.pool import PRELOAD; "
+    script = ("import importlib, sys; from runner.engine.pool import PRELOAD; "
               "[importlib.import_module(m) for m in PRELOAD]; print(sorted(m for m in sys.modules if m == 'polars'))")
     out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=BOUND, check=True)
     assert out.stdout.strip() == "[]"
@@ -444,7 +444,7 @@ def test_a_ledger_of_schema_1_gains_fencing_numbers_and_keeps_its_claims(tmp_pat
     """Claims gained a fencing number (schema 2); a ledger written before is upgraded in place."""
     import sqlite3
 
-    from runner.ledger import SCHEMA_VERSION, Ledger
+    from runner.io.ledger.store import SCHEMA_VERSION, Ledger
 
     path = tmp_path / "ledger.sqlite"
     con = sqlite3.connect(path)  # the schema 1 tables as the previous weir created them

@@ -634,13 +634,13 @@ def test_retries_give_up_after_the_last_attempt(tmp_path: Path):
 
 
 def _ledger(root: Path):
-    from runner.ledger import Ledger
+    from runner.io.ledger.store import Ledger
 
     return Ledger(f"sqlite:///{ledger_path(root)}")
 
 
 def _this_process() -> str:
-    from runner.ledger import owner_id
+    from runner.io.ledger.store import owner_id
 
     return owner_id()
 
@@ -670,7 +670,7 @@ def test_expired_claim_is_taken_over(rides_ws: Path):
 
 def test_claim_of_an_ended_process_on_this_host_is_taken_over_before_it_expires(rides_ws: Path):
     # a real process takes the claim in its own name and ends without releasing it
-    script = ("import sys; from runner.ledger import Ledger, owner_id; "
+    script = ("import sys; from runner.io.ledger.store import Ledger, owner_id; "
               "sys.exit(0 if Ledger(sys.argv[1]).claim('rides_hourly', sys.argv[2], owner_id(), 3600) else 1)")
     subprocess.run([sys.executable, "-c", script, f"sqlite:///{ledger_path(rides_ws)}", window_key(DAY, 4)],
                    check=True, timeout=60)
@@ -707,7 +707,7 @@ def _one_line_error(result) -> str:
 
 
 def test_ledger_from_a_newer_weir_is_refused_with_one_line(rides_ws: Path):
-    from runner.ledger import SCHEMA_VERSION
+    from runner.io.ledger.store import SCHEMA_VERSION
 
     backfill(rides_ws, "rides_hourly", lo=LO, hi="2026-03-28T02:00")
     conn = sqlite3.connect(ledger_path(rides_ws))

@@ -30,7 +30,7 @@ from runner.model.schemafiles.avro import columns_from_avro
 from runner.model.schemafiles.jsonschema import columns_from_jsonschema
 from runner.model.schemafiles.proto import columns_from_proto
 from runner.model.schemafiles.xsd import columns_from_xsd
-from runner.spec import Column
+from runner.model.spec import Column
 
 
 def write(path: Path, text: str) -> Path:

@@ -20,7 +20,7 @@ from conftest_run import AT, cli
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from runner.sqlcheck import SqlRefused, query_shape
+from runner.core.sqlcheck import SqlRefused, query_shape
 
 SECRET_COLUMN = "secret_7f3a"  # a column name nothing else in the suite uses
 
@@ -159,8 +159,8 @@ def test_columns_of_an_input_with_a_schema_are_still_checked_through_aliases(wei
 
 def test_a_step_reading_a_table_of_unknown_columns_has_an_unknown_output_schema(tmp_path):
     """Hardening item 9: `SELECT *, 1 AS x` over an input without a schema is not `{x}` alone."""
-    from runner.spec import load_job
-    from runner.sqlcheck import resolve_job
+    from runner.core.sqlcheck import resolve_job
+    from runner.model.spec import load_job
 
     file = tmp_path / "pay_daily.yaml"
     file.write_text(PAY.replace("SQL", json.dumps("SELECT *, 1 AS x FROM pay")))
@@ -294,9 +294,9 @@ def test_a_cte_named_like_the_input_it_reads_still_gets_that_input(tmp_path):
     Steps are given only the tables they name; a CTE that shadows an input
     still names it, so the input is given too (the first cut left it out).
     """
-    from runner.spec import JobSpec
-    from runner.steps import build
-    from runner.windows import Cadence
+    from runner.core.windows import Cadence
+    from runner.engine.steps import build
+    from runner.model.spec import JobSpec
 
     sql = "WITH pay AS (SELECT * FROM pay WHERE amount > 0) SELECT COUNT(*) AS n FROM pay"
     spec = JobSpec.model_validate({

@@ -3,7 +3,7 @@
 Engine: polars' SQL (the engine weir runs steps with). For random payments
 spread over a few hourly windows, each accepted query shape is run two ways:
 each window alone over its own rows, and once, rewritten by
-`runner.sqlfusion.fuse`, over all rows with the window key as every windowed
+`runner.core.sqlfusion.fuse`, over all rows with the window key as every windowed
 table's last column, then split by that key. The rows of each window must be
 the same (compared as sorted rows: without ORDER BY a SQL result has no
 order). Shapes that are not separable must be refused with a reason.
@@ -16,7 +16,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from runner.sqlfusion import WINDOW_KEY, fuse
+from runner.core.sqlfusion import WINDOW_KEY, fuse
 
 WINDOWS = 4
 MERCHANTS = ["m1", "m2", "m3"]
@@ -152,7 +152,7 @@ def test_the_module_imports_nothing_of_weir_and_no_effects():
     import ast
     from pathlib import Path
 
-    import runner.sqlfusion as module
+    import runner.core.sqlfusion as module
 
     tree = ast.parse(Path(module.__file__).read_text())
     imported = {a.name.split(".")[0] for n in ast.walk(tree) if isinstance(n, ast.Import) for a in n.names}

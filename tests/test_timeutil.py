@@ -11,7 +11,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from runner.timeutil import (
+from runner.model.timeutil import (
     BadValue,
     format_duration,
     format_instant,

@@ -15,9 +15,9 @@ from datetime import UTC, datetime, timedelta
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from runner.spec import WindowDecl
-from runner.timeutil import parse_utc
-from runner.windows import Cadence
+from runner.core.windows import Cadence
+from runner.model.spec import WindowDecl
+from runner.model.timeutil import parse_utc
 
 ZONES = [
     "UTC",

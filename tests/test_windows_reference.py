@@ -27,8 +27,8 @@ import pytest
 from croniter import croniter
 from cronsim import CronSim
 
-from runner.spec import WindowDecl
-from runner.windows import Cadence
+from runner.core.windows import Cadence
+from runner.model.spec import WindowDecl
 
 # ---------------------------------------------------------------- helpers
 

@@ -47,9 +47,9 @@ from typing import Any, Protocol
 from urllib.parse import urlsplit
 
 from runner import __version__
-from runner.fingerprint import canonical_json, digest
+from runner.core.fingerprints import canonical_json, digest
 from runner.model.alerting import Destination, EventKind
-from runner.timeutil import format_utc
+from runner.model.timeutil import format_utc
 
 __all__ = [
     "SCHEMA_VERSION", "EVENT_ID_HEADER", "EVENT_KIND_HEADER", "SIGNATURE_HEADER",

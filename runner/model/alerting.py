@@ -36,9 +36,9 @@ from pydantic import (
 )
 
 from runner.errors import Problem, SpecProblems
-from runner.spec import Duration, Identifier, Text, _child_type, _Model, dotted
-from runner.timeutil import short_duration
-from runner.yamlfile import Marked
+from runner.model.spec import Duration, Identifier, Text, _child_type, _Model, dotted
+from runner.model.timeutil import short_duration
+from runner.model.yamlfile import Marked
 
 
 class EventKind(StrEnum):

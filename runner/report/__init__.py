@@ -19,8 +19,8 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
-    from runner.ledger import Ledger
-    from runner.workspace import Workspace
+    from runner.engine.loading import Workspace
+    from runner.io.ledger.store import Ledger
 
 
 def build_report(ws: Workspace, ledger: Ledger, at: datetime) -> str:
@@ -57,11 +57,11 @@ def report(root: Path | str, at: datetime, ledger_url: str | None = None, out: P
     replaced atomically. Returns where they were written, their sizes, and the
     window counts per state (weir's shown names) over all jobs.
     """
-    from runner.ledger import Ledger, default_url
-    from runner.paths import REPORT
+    from runner.core.paths import REPORT
+    from runner.engine.loading import load_workspace
+    from runner.io.ledger.store import Ledger, default_url
     from runner.report.data import ORDER, collect
     from runner.report.page import render
-    from runner.workspace import load_workspace
 
     ws = load_workspace(root, thorough=False)
     ledger = Ledger(ledger_url or default_url(ws.root), create=False)

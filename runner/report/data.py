@@ -20,15 +20,15 @@ from datetime import datetime, timedelta
 from typing import TYPE_CHECKING, Any
 from zoneinfo import ZoneInfo
 
+from runner.model.timeutil import format_instant, from_us, to_us
 from runner.report.encoding import deltas, rle, vlq
-from runner.timeutil import format_instant, from_us, to_us
 
 if TYPE_CHECKING:
     import polars as pl
 
-    from runner.ledger import Ledger
-    from runner.windows import Cadence
-    from runner.workspace import Workspace
+    from runner.core.windows import Cadence
+    from runner.engine.loading import Workspace
+    from runner.io.ledger.store import Ledger
 
 # The planner's state values -> the names shown (page, metrics, --json counts). The only such table.
 STATE_NAMES = {"missing": "ready"}
@@ -393,7 +393,7 @@ def window_runs(ledger: Ledger, job: str) -> pl.DataFrame:
     import polars as pl
     import sqlalchemy as sa
 
-    from runner.ledger import runs, windows
+    from runner.io.ledger.store import runs, windows
 
     schema = {"run_id": pl.Int64, "run_finished_at": pl.String, "run_rows_read": pl.Int64,
               "run_rows_dropped": pl.Int64, "run_rows_written": pl.Int64, "run_error": pl.String}
@@ -430,7 +430,7 @@ def time_axis(frames: dict[str, pl.DataFrame], at: datetime, open_ended: bool) -
 
 
 def job_view(ws: Workspace, index: int, name: str) -> JobView:
-    from runner.spec import JobInput
+    from runner.model.spec import JobInput
 
     spec = ws.jobs[name].spec
     cad = ws.cadence(name)
@@ -532,8 +532,8 @@ def link_commands(views: list[JobView]) -> None:
 
 def collect(ws: Workspace, ledger: Ledger, at: datetime) -> ReportData:
     """Survey the ledger and every window's inputs once and shape everything the page shows."""
-    from runner.planner import next_change
-    from runner.status import survey
+    from runner.core.planner import next_change
+    from runner.engine.survey import survey
 
     assessed = survey(ws, ledger, at, None, recheck_all=True, extras=True)
     zone, zone_note = axis_zone(ws)

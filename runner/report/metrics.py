@@ -39,9 +39,9 @@ from datetime import UTC, datetime
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
-    from runner.ledger import Ledger
+    from runner.engine.loading import Workspace
+    from runner.io.ledger.store import Ledger
     from runner.report.data import JobView, ReportData
-    from runner.workspace import Workspace
 
 
 def escape_label(value: str) -> str:
@@ -95,10 +95,10 @@ def _light_views(ws: Workspace, ledger: Ledger, at: datetime) -> ReportData:
     """What the metrics need without drawing anything: counts, watermark, overdue and dropped rows."""
     import sqlalchemy as sa
 
-    from runner.ledger import runs, windows
-    from runner.planner import next_change
+    from runner.core.planner import next_change
+    from runner.engine.survey import survey
+    from runner.io.ledger.store import runs, windows
     from runner.report.data import ReportData, axis_zone, job_view, reach, with_shown_states
-    from runner.status import survey
 
     assessed = survey(ws, ledger, at, None, recheck_all=True, extras=True)
     dropped: dict[str, int] = {}
@@ -130,7 +130,7 @@ def _light_views(ws: Workspace, ledger: Ledger, at: datetime) -> ReportData:
 def metrics_text(ws: Workspace, ledger: Ledger, at: datetime, data: ReportData | None = None) -> str:
     """The workspace's window counts, watermarks and run times at `at`, in the Prometheus text format
     (version 0.0.4). `data` reuses what the page collected for the same clock."""
-    from runner.planner import job_plans
+    from runner.core.planner import job_plans
     from runner.report.data import ORDER
 
     if data is None:

@@ -13,6 +13,7 @@ from functools import cache
 from importlib import resources
 from typing import Any
 
+from runner.model.timeutil import format_instant, from_us, to_us
 from runner.report.data import (
     GLYPH,
     MEANING,
@@ -36,7 +37,6 @@ from runner.report.svg import (
     ticks,
     timeline,
 )
-from runner.timeutil import format_instant, from_us, to_us
 
 OPEN_HISTORIES = 4  # job histories shown unfolded: the first jobs with windows not done
 

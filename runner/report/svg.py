@@ -16,8 +16,8 @@ from datetime import UTC, datetime, timedelta
 from typing import Any
 from zoneinfo import ZoneInfo
 
+from runner.model.timeutil import from_us
 from runner.report.data import GLYPH, ORDER, STRIP_BUCKETS, JobView
-from runner.timeutil import from_us
 
 PLOT_W = 1200          # user units of the time axis in every drawing
 GUTTER = 78            # left margin of a job's timeline, for the y-axis labels

@@ -49,8 +49,8 @@ def chained(steps: int) -> str:
 
 
 def best_load(root: Path, repeats: int) -> float:
+    from runner.engine.loading import load_workspace
     from runner.errors import SpecProblems
-    from runner.workspace import load_workspace
 
     best = float("inf")
     for _ in range(repeats + 1):  # the first is a warm-up (imports, sqlglot's dialect)

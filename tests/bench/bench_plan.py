@@ -8,10 +8,10 @@ It builds a workspace of 20 jobs with one year (2026, UTC) of hourly windows
 each, 175,200 windows in all: 10 jobs read one small CSV file per day
 (`state/landing/src_NN/YYYY-MM-DD.csv`) and 10 jobs each read one of those
 (a job input), so the upstream cascade is part of the work. The ledger is
-written directly (sqlite3 `executemany`, the columns of runner.ledger's
+written directly (sqlite3 `executemany`, the columns of runner.io.ledger.store's
 tables), one done run and one done window state per window, with
-fingerprints computed the way a run computes them (runner.fingerprint;
-the input component through runner.status.InputProber), so that every
+fingerprints computed the way a run computes them (runner.core.fingerprints;
+the input component through runner.engine.survey.InputProber), so that every
 window is `done` and nothing is due. The benchmark checks that before it
 times anything.
 
@@ -82,13 +82,13 @@ output:
 
 def build(root: Path) -> None:
     """Job files, landing files and a full ledger consistent with them."""
-    from runner import fingerprint as fp
-    from runner.execute import spec_and_code
-    from runner.ledger import Ledger, default_url, runs, texts, windows
-    from runner.status import InputProber
-    from runner.timeutil import format_instant
-    from runner.windows import Window
-    from runner.workspace import load_workspace
+    from runner.core import fingerprints as fp
+    from runner.core.windows import Window
+    from runner.engine.loading import load_workspace
+    from runner.engine.survey import InputProber
+    from runner.engine.window import spec_and_code
+    from runner.io.ledger.store import Ledger, default_url, runs, texts, windows
+    from runner.model.timeutil import format_instant
 
     (root / "jobs").mkdir(parents=True)
     (root / "state").mkdir()

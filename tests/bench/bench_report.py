@@ -11,7 +11,7 @@ run on the same workspace and ledger in the same rounds, old and new in turn.
 
 It writes a workspace of 20 invented bike-share jobs (4 reading a database
 table, 16 reading earlier jobs, in 5 layers), all hourly in Europe/Lisbon over
-2025, and a synthetic ledger straight through `runner.ledger` (SQLAlchemy
+2025, and a synthetic ledger straight through `runner.io.ledger.store` (SQLAlchemy
 Core): mostly done windows with fingerprints that match the job files, a few
 failed windows, two jobs whose March windows ran with older code (stale by
 code, and their readers stale by upstream), late inputs, windows never run and
@@ -43,15 +43,15 @@ import sqlalchemy as sa
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent))  # the tests folder: the DevTools client (helpers_browser.py)
 
-from runner import fingerprint as fp  # noqa: E402
-from runner import ledger as ledger_mod  # noqa: E402
-from runner.execute import spec_and_code  # noqa: E402
-from runner.planner import Snapshot, _upstream, assess_job  # noqa: E402
+from runner.core import fingerprints as fp  # noqa: E402
+from runner.core.planner import Snapshot, _upstream, assess_job  # noqa: E402
+from runner.engine.loading import load_workspace  # noqa: E402
+from runner.engine.window import spec_and_code  # noqa: E402
+from runner.io.ledger import store as ledger_mod  # noqa: E402
 from runner.report import build_report, write_report  # noqa: E402
 from runner.report.data import collect  # noqa: E402
 from runner.report.metrics import metrics_text  # noqa: E402
 from runner.report.page import render  # noqa: E402
-from runner.workspace import load_workspace  # noqa: E402
 
 AT = datetime(2026, 1, 1, 0, 30, tzinfo=UTC)  # every window of 2025 (Lisbon) is due
 ROOTS = ["rides_riverside", "rides_old_town", "dock_moves", "fare_payments"]
@@ -266,7 +266,7 @@ def main() -> None:
     old_report, old_metrics = old_modules(args.baseline)
     ws = load_workspace(root, thorough=False)
     ledger = ledger_mod.Ledger(ledger_mod.default_url(root), create=False)
-    from runner.status import survey
+    from runner.engine.survey import survey
 
     old_data = old_report.collect(ws, ledger, AT)
     data = collect(ws, ledger, AT)

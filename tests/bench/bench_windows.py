@@ -24,8 +24,8 @@ from zoneinfo import ZoneInfo
 import pandas as pd
 import polars as pl
 
-from runner.spec import WindowDecl
-from runner.windows import Cadence
+from runner.core.windows import Cadence
+from runner.model.spec import WindowDecl
 
 ZONE = "Europe/Lisbon"
 

@@ -14,15 +14,15 @@ from collections.abc import Mapping
 from datetime import datetime, timedelta
 from typing import TYPE_CHECKING
 
+from runner.core.windows import Cadence
 from runner.errors import Problem
-from runner.spec import Job, JobInput
-from runner.windows import Cadence
+from runner.model.spec import Job, JobInput
 
 if TYPE_CHECKING:
     import networkx as nx
     import polars as pl
 
-    from runner.windows import Window, WindowSpan
+    from runner.core.windows import Window, WindowSpan
 
 Links = dict[str, set[str]]  # job -> the other jobs it reads (its direct producers)
 
@@ -160,7 +160,7 @@ def output_problems(jobs: Mapping[str, Job], root: str | os.PathLike[str] | None
     """
     import polars as pl
 
-    from runner.paths import OWNED, OWNED_FOLDERS, database_file, output_paths, owner_of
+    from runner.core.paths import OWNED, OWNED_FOLDERS, database_file, output_paths, owner_of
 
     base = os.fspath(root) if root is not None else "."
     problems: list[Problem] = []
@@ -278,7 +278,7 @@ def output_span(cad: Cadence, hi: datetime) -> WindowSpan:
         lo = cad.start
     span = cad.span(lo, hi)
     if len(span) > most:
-        from runner.windows import WindowSpan
+        from runner.core.windows import WindowSpan
 
         span = WindowSpan(span.starts_us.tail(most), span.ends_us.tail(most), span.tz)
     return span
@@ -298,7 +298,7 @@ def _table_identity(base: str, url: str, table: str) -> tuple:
     """
     import sqlalchemy as sa
 
-    from runner.paths import database_file
+    from runner.core.paths import database_file
 
     try:
         parsed = sa.engine.make_url(url)

@@ -31,8 +31,8 @@ from pydantic import (
 )
 
 from runner.errors import Problem, SpecProblems
-from runner.timeutil import BadValue, parse_duration, parse_instant, zone
-from runner.yamlfile import Marked, YamlLimit, load_marked, source_text
+from runner.model.timeutil import BadValue, parse_duration, parse_instant, zone
+from runner.model.yamlfile import Marked, YamlLimit, load_marked, source_text
 
 
 def _text(value: Any) -> Any:

@@ -30,7 +30,7 @@ class Context:
 
 def _now(at: str | None) -> datetime:
     from runner.errors import UsageError
-    from runner.timeutil import BadValue, parse_instant
+    from runner.model.timeutil import BadValue, parse_instant
 
     if at is None:
         return datetime.now(UTC)
@@ -162,7 +162,7 @@ def windows(obj: Context, job: str, lo: str | None, hi: str | None, at: str | No
 @cli.command()
 def schema() -> None:
     """Print the JSON Schema of a job file (for editors that validate YAML as you type)."""
-    from runner.spec import job_schema
+    from runner.model.spec import job_schema
 
     _emit_json(job_schema())
 
@@ -174,7 +174,7 @@ def schema() -> None:
 def graph(obj: Context, fmt: str) -> None:
     """Print the job graph: which job reads which."""
     from runner import api
-    from runner.graph import render
+    from runner.core.graph import render
 
     ws = api.workspace(obj.root)
     click.echo(render(ws.graph, ws.jobs, fmt), nl=False)
@@ -465,8 +465,7 @@ def tick(obj: Context, at: str | None, workers: int | None, as_json: bool) -> No
     status 0, so `* * * * * cd WORKSPACE && weir tick` is safe even when a tick
     outlasts a minute. Exit status 1 when a window failed.
     """
-    from runner import gate
-
+    from runner.engine import gate
     now = _now(at)
     held = gate.fresh(obj.root.resolve(), now, obj.ledger)
     if held is not False:
@@ -525,7 +524,7 @@ def serve(obj: Context, every: str, workers: int | None) -> None:
 
     from runner import api
     from runner.errors import UsageError
-    from runner.timeutil import BadValue, parse_duration
+    from runner.model.timeutil import BadValue, parse_duration
 
     try:
         interval = parse_duration(every).total_seconds()

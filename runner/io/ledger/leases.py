@@ -26,7 +26,7 @@ from functools import lru_cache
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
-    from runner.ledger import Ledger
+    from runner.io.ledger.store import Ledger
 
 
 def _read(path: str) -> str:

@@ -15,7 +15,7 @@ _DATETIME = re.compile(r"^datetime(?:\((.+)\))?$")
 
 @lru_cache(maxsize=256)
 def polars_dtype(declared: str) -> pl.DataType:
-    """The polars dtype of a declared column type (validated by `runner.spec.Column`).
+    """The polars dtype of a declared column type (validated by `runner.model.spec.Column`).
 
     `datetime` without a zone is timezone-naive microseconds; `datetime(Z)`
     is aware in zone Z (values with an offset are converted to it).

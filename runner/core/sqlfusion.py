@@ -40,7 +40,7 @@ from dataclasses import dataclass
 import sqlglot
 from sqlglot import exp
 
-DIALECT = "duckdb"  # as runner.sqlcheck.SQL_DIALECT (not imported: this module stays pure and light)
+DIALECT = "duckdb"  # as runner.core.sqlcheck.SQL_DIALECT (not imported: this module stays pure and light)
 WINDOW_KEY = "__weir_window"
 
 

@@ -31,17 +31,17 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import IO, TYPE_CHECKING, Any
 
+from runner.core.fingerprints import batches_digest, frame_digest, sort_columns
+from runner.core.paths import escapes
 from runner.errors import WeirError
-from runner.fingerprint import batches_digest, frame_digest, sort_columns
-from runner.paths import escapes
-from runner.sources import file_sha256
+from runner.io.readers import file_sha256
 
 if TYPE_CHECKING:
     from datetime import datetime
 
     import polars as pl
 
-    from runner.workspace import Workspace
+    from runner.engine.loading import Workspace
 
 STAMPS = ("window_start", "window_end", "run_id", "code_version")
 TMP_MARK = ".weir-tmp-"
@@ -141,8 +141,8 @@ def sweep_temporaries(ws: Workspace, at: datetime) -> int:
     """Remove stale temporary files (`stale_temporary`) from the folders of every file output; return
     how many. The folders are those that the windows starting before `at` render to (the latest
     `graph.MOST_WINDOWS` of each job)."""
-    from runner.graph import output_span
-    from runner.paths import output_paths
+    from runner.core.graph import output_span
+    from runner.core.paths import output_paths
 
     folders: set[str] = set()
     for name, job in ws.jobs.items():
@@ -201,7 +201,7 @@ def stale_temporary(name: str, mtime: float, now: float) -> bool:
     Its process, of this host, has ended; or (another host's, or a reused
     process id) it was last written over `STALE_AFTER` seconds ago.
     """
-    from runner.leases import process_ended
+    from runner.io.ledger.leases import process_ended
 
     found = _TMP_NAME.match(name)
     if found is None:
@@ -344,8 +344,8 @@ def write_table(url: str, table: str, frame: pl.DataFrame, window_key: str) -> t
     import polars as pl
     import sqlalchemy as sa
 
-    from runner import engines
-    from runner.paths import database_file
+    from runner.core.paths import database_file
+    from runner.io import databases as engines
 
     keys = sort_columns(frame.schema)
     if keys and frame.height > 1:
@@ -398,8 +398,7 @@ def read_table_digest(url: str, table: str, window_key: str) -> str | None:
     """The digest `write_table` would report for the rows now in the table (None if no table)."""
     import sqlalchemy as sa
 
-    from runner import engines
-
+    from runner.io import databases as engines
     engine = engines.engine(url)
     try:
         with engine.execution_options(**engines.READ).begin() as conn:

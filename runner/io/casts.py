@@ -20,12 +20,12 @@ from dataclasses import dataclass
 from functools import lru_cache
 from typing import TYPE_CHECKING, Any
 
-from runner.coltypes import polars_dtype
+from runner.model.coltypes import polars_dtype
 
 if TYPE_CHECKING:
     import polars as pl
 
-    from runner.spec import Column, OutputCheck
+    from runner.model.spec import Column, OutputCheck
 
 EXAMPLES = 5
 TYPED = "__typed_"  # prefix of the typed copy of a declared column inside a batch
@@ -337,7 +337,7 @@ def _literals(column: Column, values: list[Any]) -> list[Any]:
     """Declared values as Python values of the column's type."""
     import polars as pl
 
-    from runner.yamlfile import source_text
+    from runner.model.yamlfile import source_text
 
     texts = [source_text(v) if not isinstance(v, str) else v for v in values]
     series = pl.Series("v", [str(t) for t in texts], dtype=pl.String)
@@ -447,7 +447,7 @@ def check_output(frame: pl.LazyFrame, checks: list[OutputCheck], previous: pl.La
                     raise failed(f"{what} rose {change:.1%}, from {before:g} in the previous window to "
                                  f"{now:g}; at most {spec.max_rise:.0%} allowed")
         elif check.rule is not None:
-            from runner.sqlcheck import SqlRefused, check_rule
+            from runner.core.sqlcheck import SqlRefused, check_rule
 
             try:  # before polars reads it: a subquery in a rule would open files
                 check_rule(check.rule)

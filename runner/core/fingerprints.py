@@ -28,7 +28,7 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     import polars as pl
 
-    from runner.spec import JobSpec
+    from runner.model.spec import JobSpec
 
 COMPONENTS = ("spec", "code", "input", "upstream")
 _DIGITS = 32  # hex digits kept: 128 bits

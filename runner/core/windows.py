@@ -32,7 +32,7 @@ from datetime import UTC, datetime, timedelta
 from typing import TYPE_CHECKING, Any
 from zoneinfo import ZoneInfo
 
-from runner.timeutil import (
+from runner.model.timeutil import (
     format_instant,
     format_utc,
     from_us,
@@ -46,7 +46,7 @@ from runner.timeutil import (
 if TYPE_CHECKING:
     import polars as pl
 
-    from runner.spec import WindowDecl
+    from runner.model.spec import WindowDecl
 
 _US = 1_000_000
 _FIXED_UNITS = {"m": 60 * _US, "h": 3600 * _US}

@@ -11,12 +11,12 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from typing import TYPE_CHECKING, Any
 
-from runner import fingerprint as fp
-from runner.graph import upstream_windows
-from runner.spec import FileInput, JobInput
-from runner.timeutil import format_instant, from_us, parse_utc, to_us
-from runner.windows import Cadence, Window
-from runner.workspace import Workspace
+from runner.core import fingerprints as fp
+from runner.core.graph import upstream_windows
+from runner.core.windows import Cadence, Window
+from runner.engine.loading import Workspace
+from runner.model.spec import FileInput, JobInput
+from runner.model.timeutil import format_instant, from_us, parse_utc, to_us
 
 if TYPE_CHECKING:
     import polars as pl

@@ -15,10 +15,10 @@ from datetime import timedelta
 from functools import cached_property
 from pathlib import Path
 
-from runner import graph as graphs
+from runner.core import graph as graphs
+from runner.core.windows import Cadence
 from runner.errors import Problem, SpecProblems, UsageError
-from runner.spec import SETTINGS_FILE, Job, WorkspaceSettings, load_job, load_settings
-from runner.windows import Cadence
+from runner.model.spec import SETTINGS_FILE, Job, WorkspaceSettings, load_job, load_settings
 
 JOB_SUFFIXES = (".yaml", ".yml")
 
@@ -170,7 +170,7 @@ def load_workspace(root: Path | str = ".", resolve_sql: bool = True, thorough: b
     if problems:
         raise SpecProblems(problems)
     if thorough:
-        from runner.cardinality import batch_advice
+        from runner.core.cardinality import batch_advice
 
         warnings.extend(batch_advice(root, jobs))
     return Workspace(root=root, jobs=jobs, warnings=warnings, resolved_schemas=schemas, settings=settings)
@@ -186,7 +186,7 @@ def _acyclic(jobs: dict[str, Job]) -> bool:
 
 def _sql_problems(jobs: dict[str, Job], schemas: dict) -> list[Problem]:
     """SQL findings of every job; fills `schemas` with each job's resolved output schema."""
-    from runner.sqlcheck import resolve_job
+    from runner.core.sqlcheck import resolve_job
 
     problems: list[Problem] = []
     for name in graphs.order_links(graphs.links(jobs)):

@@ -26,7 +26,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from runner.paths import LEDGER, TICK_GATE
+from runner.core.paths import LEDGER, TICK_GATE
 
 GATE = Path(TICK_GATE)
 _PLACEHOLDER = re.compile(r"\{[^{}]*\}")

@@ -8,7 +8,7 @@
 would any other executor. A window whose inputs or producers are not there
 yet is `waiting` (nothing is recorded). A failure records its error in the
 ledger and its traceback in `state/logs/JOB/WINDOW.log`, and leaves the
-previous output in place; the supervisor (runner.pool) retries it up to
+previous output in place; the supervisor (runner.engine.pool) retries it up to
 `retries:` times with a doubling delay, holding the claim in between. A run
 whose claim another runner took over (its lease lapsed) neither swaps its
 output nor records done.
@@ -28,13 +28,13 @@ from pathlib import Path
 from typing import Any
 
 from runner import __version__
-from runner import fingerprint as fp
-from runner.graph import upstream_windows
-from runner.ledger import Ledger, owner_id, utc_text
-from runner.paths import render
-from runner.spec import DatabaseInput, FileInput, JobInput
-from runner.windows import Window
-from runner.workspace import Workspace
+from runner.core import fingerprints as fp
+from runner.core.graph import upstream_windows
+from runner.core.paths import render
+from runner.core.windows import Window
+from runner.engine.loading import Workspace
+from runner.io.ledger.store import Ledger, owner_id, utc_text
+from runner.model.spec import DatabaseInput, FileInput, JobInput
 
 # Below this much input a window runs in memory in one go (no streaming engine
 # start-up, no reading the result back); above it, polars streams to the file.
@@ -138,7 +138,7 @@ def spec_and_code(ws: Workspace, job: str) -> tuple[fp.Part, fp.Part]:
     Computed once per loaded workspace (a long-running `weir serve` loads the
     workspace again before each tick, so edits are still seen).
     """
-    from runner.steps import code_pieces
+    from runner.engine.steps import code_pieces
 
     cache = ws.__dict__.setdefault("_spec_and_code", {})
     if job not in cache:
@@ -162,7 +162,7 @@ def producer_windows(ws: Workspace, job: str, window: Window) -> list[tuple[str,
 def prepare(ctx: RunContext, job: str, window: Window, database_entries: list[dict[str, Any]] | None = None
             ) -> Prepared:
     """Find inputs and producer states; compute the fingerprint (reads the file system and ledger)."""
-    from runner.sources import find_files
+    from runner.io.readers import find_files
 
     ws = ctx.ws
     spec = ws.jobs[job].spec
@@ -239,7 +239,7 @@ def run_attempt(ctx: RunContext, attempt: Attempt,
     supervisor can renew it and record a failure if this process dies. On a
     failure that will be retried, the claim stays held; otherwise it is released.
     """
-    from runner.sources import InputStats, database_frame
+    from runner.io.readers import InputStats, database_frame
 
     ws = ctx.ws
     job, force = attempt.job, attempt.force
@@ -326,9 +326,10 @@ def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: 
              db_frames: dict[str, Any], t0: float) -> Outcome:
     import polars as pl
 
-    from runner import sinks, steps
-    from runner.checks import check_output
-    from runner.sources import file_frame
+    from runner.engine import steps
+    from runner.io import outputs as sinks
+    from runner.io.casts import check_output
+    from runner.io.readers import file_frame
 
     ws = ctx.ws
     spec = ws.jobs[job].spec
@@ -433,7 +434,7 @@ def _ingested(prep: Prepared) -> str | None:
 
 
 def _db_url(root: Path, url: str | None) -> str:
-    from runner.paths import database_url
+    from runner.core.paths import database_url
 
     assert url is not None
     return database_url(root, url)
@@ -442,15 +443,15 @@ def _db_url(root: Path, url: str | None) -> str:
 def _producer_frame(ws: Workspace, source: JobInput, producers: list[Producer], stats: Any) -> Any:
     import polars as pl
 
-    from runner.sources import output_frame, table_rows
-    from runner.sqlcheck import declared_schema
+    from runner.core.sqlcheck import declared_schema
+    from runner.io.readers import output_frame, table_rows
 
     empty = declared_schema(source.columns) or ws.output_schemas.get(source.job)
     out = ws.jobs[source.job].spec.output
     if out.path is not None:
         paths = [str(ws.root / p.state["output"]) for p in producers if p.state and p.state.get("output")]
         if not paths and empty is None:
-            from runner.sources import InputError
+            from runner.io.readers import InputError
 
             raise InputError(f"input from job {source.job} is empty here and its columns are unknown; "
                              "declare them with schema: under this input")
@@ -481,7 +482,7 @@ def _previous_output(ctx: RunContext, job: str, window: Window) -> Any:
         return None
     import polars as pl
 
-    from runner.sources import table_rows
+    from runner.io.readers import table_rows
 
     if out.path is not None:
         path = ctx.ws.root / state["output"]
@@ -493,7 +494,7 @@ def _previous_output(ctx: RunContext, job: str, window: Window) -> Any:
 
 def error_text(exc: BaseException) -> str:
     """One or two lines for the ledger and the terminal; the traceback goes to the log."""
-    from runner.checks import CheckFailed
+    from runner.io.casts import CheckFailed
 
     if isinstance(exc, CheckFailed):
         return str(exc)
@@ -512,7 +513,7 @@ def error_text(exc: BaseException) -> str:
 
 
 def log_path(root: Path, job: str, window: Window) -> Path:
-    from runner.paths import LOGS
+    from runner.core.paths import LOGS
 
     return root / LOGS / job / f"{window.id.replace('/', '_')}.log"
 
@@ -530,9 +531,9 @@ def record_failure(ctx: RunContext, attempt: Attempt, message: str, run_id: int 
     window whose previous output is intact and current leaves the window done
     (the failed attempt stays in its history).
     """
-    from runner.checks import CheckFailed
     from runner.errors import WeirError
-    from runner.sinks import open_append
+    from runner.io.casts import CheckFailed
+    from runner.io.outputs import open_append
 
     job = attempt.job
     window = ctx.ws.cadence(job).window(_key_to_instant(attempt.window_key))
@@ -593,8 +594,8 @@ def record_failure(ctx: RunContext, attempt: Attempt, message: str, run_id: int 
 
 def _intact_and_current(ctx: RunContext, job: str, window: Window, fingerprint: str) -> bool:
     """Whether the window is recorded done with `fingerprint` and its output is still what was recorded."""
-    from runner.sinks import read_table_digest
-    from runner.sources import file_sha256
+    from runner.io.outputs import read_table_digest
+    from runner.io.readers import file_sha256
 
     state = ctx.ledger.state_row(job, window.key)
     if (state is None or state["state"] != "done" or state.get("output_state")

@@ -17,15 +17,15 @@ import sys
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from runner.core.sqlcheck import SqlRefused, bounds_frame, query_shape
 from runner.errors import WeirError
-from runner.spec import JobSpec, PythonStep, SqlStep
-from runner.sqlcheck import SqlRefused, bounds_frame, query_shape
-from runner.timeutil import to_us
+from runner.model.spec import JobSpec, PythonStep, SqlStep
+from runner.model.timeutil import to_us
 
 if TYPE_CHECKING:
     import polars as pl
 
-    from runner.windows import Window
+    from runner.core.windows import Window
 
 
 class StepError(WeirError):

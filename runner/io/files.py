@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from runner.paths import expand
+from runner.core.paths import expand
 
 _PLACEHOLDER = re.compile(r"\{[^{}]*\}")
 
@@ -110,7 +110,7 @@ def relative(root: Path, path: str) -> str:
 
 def manifest(root: Path, name: str, files: list[tuple[str, int, int]], content: bool) -> list[dict[str, Any]]:
     """Fingerprint entries of an input's files (see `fingerprint.input_part`)."""
-    from runner.sources import file_sha256
+    from runner.io.readers import file_sha256
 
     out = []
     for path, size, mtime_ns in files:

@@ -38,8 +38,8 @@ from functools import lru_cache
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from runner.core.paths import INPUT_CHECKS
 from runner.errors import WeirError
-from runner.paths import INPUT_CHECKS
 
 if TYPE_CHECKING:
     import numpy as np

@@ -18,7 +18,7 @@ if TYPE_CHECKING:
 
     import polars as pl
 
-    from runner.windows import Window, WindowSpan
+    from runner.core.windows import Window, WindowSpan
 
 # What weir itself keeps in a workspace (relative paths): no output may be written there.
 LEDGER = "state/ledger.sqlite"  # the default ledger
@@ -167,7 +167,7 @@ def output_paths(template: str, span: WindowSpan, most: int = 20_000) -> tuple[W
     """
     import polars as pl
 
-    from runner.windows import WindowSpan
+    from runner.core.windows import WindowSpan
 
     rendered = render_many(template, span.starts_us, span.ends_us, span.tz.key, once=True)
     if rendered is None:

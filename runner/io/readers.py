@@ -19,14 +19,14 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from runner.inputfiles import BadRows, InputError
-from runner.spec import Column, DatabaseInput, FileInput, format_from_name
+from runner.io.inputfiles import BadRows, InputError
+from runner.model.spec import Column, DatabaseInput, FileInput, format_from_name
 
 if TYPE_CHECKING:
     import polars as pl
 
-    from runner.inputfiles import FileRead
-    from runner.windows import Window
+    from runner.core.windows import Window
+    from runner.io.inputfiles import FileRead
 
 ROW = "__weir_row"  # a row's number in its file (0 = the first record after a CSV header)
 FILE = "__weir_file"  # the file's place among the input's files
@@ -51,7 +51,7 @@ def find_files(root: Path, name: str, source: FileInput, window: Window, index: 
     `index` (a `fileindex.FileIndex` of this input) answers from one listing
     made beforehand instead of globbing again.
     """
-    from runner.paths import expand
+    from runner.core.paths import expand
 
     return files_for_patterns(root, name, source, expand(source.files, window), index)
 
@@ -59,8 +59,8 @@ def find_files(root: Path, name: str, source: FileInput, window: Window, index: 
 def files_for_patterns(root: Path, name: str, source: FileInput, patterns: list[str], index: Any = None) -> FileSet:
     """The files of one input matching already rendered `patterns`; InputError when one of them
     leads outside the workspace (and the folders the input allows)."""
-    from runner.fileindex import listing, manifest, relative
-    from runner.inputfiles import confine, outside_roots
+    from runner.io.files import listing, manifest, relative
+    from runner.io.inputfiles import confine, outside_roots
 
     files = listing(root, patterns, index)
     confine(name, [p for p, _, _ in files], outside_roots(root, source.allow_outside),
@@ -136,8 +136,8 @@ def window_filter(columns: dict[str, Column], time_column: str | None, window: W
     """True on rows whose typed time column lies in the window (null where it did not read)."""
     import polars as pl
 
-    from runner.checks import TYPED
-    from runner.coltypes import polars_dtype
+    from runner.io.casts import TYPED
+    from runner.model.coltypes import polars_dtype
 
     if not time_column:
         return None
@@ -156,7 +156,7 @@ def _key_exprs(key: list[str], columns: dict[str, Column]) -> list[pl.Expr]:
     """The key columns as compared: declared ones typed, undeclared ones as read."""
     import polars as pl
 
-    from runner.checks import TYPED
+    from runner.io.casts import TYPED
 
     return [pl.col(TYPED + k if k in columns else k).alias(f"__weir_key{i}") for i, k in enumerate(key)]
 
@@ -167,7 +167,7 @@ def key_frame(lf: pl.LazyFrame, key: list[str], columns: dict[str, Column], raw_
     """An input's key columns (typed) and row positions, restricted to the window, read lazily."""
     import polars as pl
 
-    from runner.checks import apply_fast, cast_frame, plan_casts, settle
+    from runner.io.casts import apply_fast, cast_frame, plan_casts, settle
 
     wanted = list(dict.fromkeys([*key, *([time_column] if time_column else [])]))
     declared = {c: columns[c] for c in wanted if c in columns}
@@ -258,7 +258,7 @@ class BatchInspector:
                  repeats: pl.DataFrame | None = None, samples: dict[str, pl.Series] | None = None):
         import polars as pl
 
-        from runner.checks import column_rules, plan_casts
+        from runner.io.casts import column_rules, plan_casts
 
         self.name = name
         self.labels = labels
@@ -290,7 +290,7 @@ class BatchInspector:
 
     def stage(self, frame: pl.LazyFrame) -> pl.LazyFrame:
         """`frame` (raw columns and row numbers) with typed columns and the two flags, natively."""
-        from runner.checks import apply_fast
+        from runner.io.casts import apply_fast
 
         frame = apply_fast(frame, self.plan)
         flags = [e for e in (self.bad, self.inside) if e is not None]
@@ -308,7 +308,7 @@ class BatchInspector:
         """Judge one staged batch; return its good rows inside the window, as declared."""
         import polars as pl
 
-        from runner.checks import settle
+        from runner.io.casts import settle
 
         height = batch.height
         frame = batch
@@ -376,7 +376,7 @@ class BatchInspector:
 
     def output_schema(self, raw_schema: pl.Schema) -> dict[str, Any]:
         """Columns and types of the batches this inspector returns."""
-        from runner.coltypes import polars_dtype
+        from runner.model.coltypes import polars_dtype
 
         return {
             c: polars_dtype(self.columns[c].type) if c in self.columns else raw_schema[c]
@@ -431,7 +431,7 @@ def _ndjson(name: str, read: FileRead, text_columns: list[str], row_index: bool)
 def _unreadable(name: str, read: FileRead, exc: Exception) -> InputError:
     """The error for a file polars cannot read, naming it (and, for NDJSON, the line Python's json
     module cannot read)."""
-    from runner.inputfiles import EAGER, json_problem
+    from runner.io.inputfiles import EAGER, json_problem
 
     if read.fmt == "ndjson" and read.size <= EAGER:
         found = json_problem(bytes(read.text()))
@@ -445,7 +445,7 @@ def _one_file(name: str, number: int, read: FileRead, text_columns: list[str], n
     carry FILE and ROW."""
     import polars as pl
 
-    from runner.inputfiles import EAGER
+    from runner.io.inputfiles import EAGER
 
     skips = read.shape is not None and len(read.shape.skip) > 0
     if read.fmt == "ndjson" and read.size <= EAGER:
@@ -494,7 +494,7 @@ def file_frames(name: str, reads: list[FileRead], text_columns: dict[int, list[s
                 ) -> list[pl.LazyFrame]:
     """Lazy frames over the prepared files of one input: small CSV files sharing a header
     together, every other file on its own."""
-    from runner.inputfiles import SMALL
+    from runner.io.inputfiles import SMALL
 
     frames = []
     together: dict[tuple[tuple[str, ...], tuple[str, ...]], list[int]] = {}
@@ -513,7 +513,7 @@ def judge_records(name: str, source: FileInput, read: FileRead, stats: InputStat
     `max_bad_rows`); the rows of an input without declared columns are counted here too."""
     import polars as pl
 
-    from runner.inputfiles import reason_text
+    from runner.io.inputfiles import reason_text
 
     found = read.shape
     if found is None:
@@ -566,13 +566,13 @@ def file_frame(root: Path, name: str, source: FileInput, files: FileSet, window:
     """
     import polars as pl
 
-    from runner.fileindex import relative
-    from runner.inputfiles import outside_roots, prepare
+    from runner.io.files import relative
+    from runner.io.inputfiles import outside_roots, prepare
 
     columns = declared_columns(source)
     key = list(source.key or [])
     if not files.paths:
-        from runner.coltypes import polars_dtype
+        from runner.model.coltypes import polars_dtype
 
         schema = {c: polars_dtype(col.type) for c, col in columns.items()} if columns else (empty_schema or {})
         return pl.LazyFrame(schema=schema)
@@ -635,7 +635,7 @@ def _samples(lf: pl.LazyFrame, columns: dict[str, Column], raw: pl.Schema) -> di
     """The first values of the declared timestamp columns that are read as text."""
     import polars as pl
 
-    from runner.coltypes import polars_dtype
+    from runner.model.coltypes import polars_dtype
 
     wanted = [c for c, col in columns.items()
               if c in raw and raw[c] == pl.String and isinstance(polars_dtype(col.type), pl.Datetime)]
@@ -689,7 +689,7 @@ def database_frame(root: Path, name: str, source: DatabaseInput, window: Window,
     import polars as pl
     import sqlalchemy as sa
 
-    from runner.fingerprint import frame_digest
+    from runner.core.fingerprints import frame_digest
 
     url = _expand_sqlite(root, source.database)
     params = {"window_start": window.start.replace(tzinfo=None), "window_end": window.end.replace(tzinfo=None)}
@@ -750,7 +750,7 @@ def database_frame(root: Path, name: str, source: DatabaseInput, window: Window,
 
 def _expand_sqlite(root: Path, url: str) -> str:
     """Relative SQLite paths are relative to the workspace, not the current folder."""
-    from runner.paths import database_url
+    from runner.core.paths import database_url
 
     return database_url(root, url)
 

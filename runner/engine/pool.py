@@ -40,16 +40,24 @@ from dataclasses import dataclass, field
 from multiprocessing.connection import Connection, wait
 from typing import Any
 
-from runner.execute import LOST, Attempt, Outcome, RunContext, precheck, record_failure, run_attempt
-from runner.leases import Leases
-from runner.planner import Task
-from runner.timeutil import short_duration
+from runner.core.planner import Task
+from runner.engine.window import (
+    LOST,
+    Attempt,
+    Outcome,
+    RunContext,
+    precheck,
+    record_failure,
+    run_attempt,
+)
+from runner.io.ledger.leases import Leases
+from runner.model.timeutil import short_duration
 
 DEPTH = 2  # attempts queued per worker: the next one is already there when the current one ends
 POLL = 0.5  # longest wait between looks at the stop flag, deadlines and lost claims
 # weir's modules a fork server imports once, so each worker starts without importing them (never polars)
-PRELOAD = ["runner.execute", "runner.ledger", "runner.workspace", "runner.sources", "runner.steps",
-           "runner.sinks", "runner.checks", "runner.fileindex"]
+PRELOAD = ["runner.engine.window", "runner.io.ledger.store", "runner.engine.loading", "runner.io.readers", "runner.engine.steps",
+           "runner.io.outputs", "runner.io.casts", "runner.io.files"]
 
 
 def default_workers() -> int:

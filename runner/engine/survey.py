@@ -13,14 +13,14 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
 
-from runner import fingerprint as fp
-from runner.execute import spec_and_code
-from runner.fileindex import FileIndex
-from runner.ledger import Ledger
-from runner.planner import Probe, Snapshot, assess
-from runner.spec import DatabaseInput, FileInput
-from runner.windows import Window
-from runner.workspace import Workspace
+from runner.core import fingerprints as fp
+from runner.core.planner import Probe, Snapshot, assess
+from runner.core.windows import Window
+from runner.engine.loading import Workspace
+from runner.engine.window import spec_and_code
+from runner.io.files import FileIndex
+from runner.io.ledger.store import Ledger
+from runner.model.spec import DatabaseInput, FileInput
 
 
 class _Arriving(Mapping):
@@ -51,7 +51,7 @@ def snapshot(ws: Workspace, ledger: Ledger, jobs: list[str], parts: dict[str, tu
     The per-job reads run on a background thread, in `jobs` order; the returned
     snapshot's `states` wait for each job's read when it is first looked at.
     """
-    from runner.spec import JobInput
+    from runner.model.spec import JobInput
 
     read = {s.job for j in ws.jobs.values() for s in j.spec.inputs.values() if isinstance(s, JobInput)}
 
@@ -84,7 +84,7 @@ class InputProber:
     as_columns: bool = False  # `many` returns a frame (in_hash, in_newest, in_waiting) instead of Probes
 
     def __call__(self, job: str, window: Window) -> Probe:
-        from runner.sources import find_files
+        from runner.io.readers import find_files
 
         spec = self.ws.jobs[job].spec
         entries: list[dict[str, Any]] = []
@@ -113,9 +113,9 @@ class InputProber:
         set of rendered patterns is looked up once."""
         import polars as pl
 
-        from runner.paths import expand, render_many
-        from runner.sources import files_for_patterns
-        from runner.timeutil import from_us
+        from runner.core.paths import expand, render_many
+        from runner.io.readers import files_for_patterns
+        from runner.model.timeutil import from_us
 
         def window(i: int) -> Window:
             return Window(from_us(starts_us[i]), from_us(ends_us[i]), tz)

@@ -24,8 +24,8 @@ from dataclasses import dataclass, field
 from functools import lru_cache
 from typing import TYPE_CHECKING
 
-from runner.coltypes import polars_dtype
-from runner.spec import DatabaseInput, FileInput, Job, JobInput, SqlStep
+from runner.model.coltypes import polars_dtype
+from runner.model.spec import DatabaseInput, FileInput, Job, JobInput, SqlStep
 
 if TYPE_CHECKING:
     import polars as pl

@@ -43,7 +43,7 @@ import sqlalchemy as sa
 from sqlalchemy import exc as sa_exc
 
 from runner.errors import LedgerError
-from runner.leases import HeldLock, holder_gone, owner_id
+from runner.io.ledger.leases import HeldLock, holder_gone, owner_id
 
 __all__ = ["HeldLock", "Ledger", "default_url", "owner_id", "utc_text"]
 
@@ -197,7 +197,7 @@ def utc_text(instant: datetime | None = None) -> str:
 
 
 def default_url(root: Path) -> str:
-    from runner.paths import LEDGER
+    from runner.core.paths import LEDGER
 
     return f"sqlite:///{root / LEDGER}"
 
@@ -213,8 +213,7 @@ class Ledger:
         return (Ledger, (self.url,))
 
     def __init__(self, url: str, create: bool = True):
-        from runner import engines
-
+        from runner.io import databases as engines
         self.url = url
         self._sqlite_path: Path | None = None
         try:
@@ -752,8 +751,7 @@ def _create_sqlite(path: Path) -> None:
     """
     import secrets
 
-    from runner import engines
-
+    from runner.io import databases as engines
     tmp = path.with_name(f".{path.name}.weir-tmp-{os.getpid()}-{secrets.token_hex(4)}")
     try:
         made = engines.engine(f"sqlite:///{tmp}")

@@ -22,9 +22,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
+from runner.core.sqlcheck import strip_sql
 from runner.errors import Problem
-from runner.spec import FileInput, Job, SqlStep
-from runner.sqlcheck import strip_sql
+from runner.model.spec import FileInput, Job, SqlStep
 
 if TYPE_CHECKING:
     import polars as pl
@@ -108,7 +108,7 @@ def sample(paths: list[str], fmt: str | None, columns: set[str], rows: int = SAM
     """Up to `rows` rows of the wanted columns from `paths`, in order, read lazily (None if none)."""
     import polars as pl
 
-    from runner.sources import file_format
+    from runner.io.readers import file_format
 
     frames = []
     left = rows
