@@ -12,7 +12,8 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from runner.engine.loading import Workspace, load_workspace
+from runner.core.workspace import Workspace
+from runner.engine.loading import load_workspace
 from runner.errors import UsageError, WeirError
 from runner.model.spec import DatabaseInput, FileInput, JobInput
 from runner.model.timeutil import BadValue, format_duration, format_instant, format_utc, parse_utc
@@ -62,7 +63,10 @@ def describe_input(name: str, source: Any) -> str:
 
 def check(root: Path | str, at: datetime) -> CheckReport:
     """Validate a workspace and summarize each job (raises SpecProblems on errors)."""
+    from runner.engine.samples import batch_advice
+
     ws = load_workspace(root)
+    warnings = [*ws.warnings, *batch_advice(ws.root, ws.jobs)]
     summaries = []
     for name in ws.order:
         job = ws.jobs[name]
@@ -78,7 +82,7 @@ def check(root: Path | str, at: datetime) -> CheckReport:
             first_window=first.id if first else None,
             description=job.spec.description,
         ))
-    return CheckReport(jobs=summaries, warnings=[w.render() for w in ws.warnings], order=list(ws.order))
+    return CheckReport(jobs=summaries, warnings=[w.render() for w in warnings], order=list(ws.order))
 
 
 def parse_bound(ws: Workspace, job: str, text: str | None, option: str) -> datetime | None:
@@ -304,10 +308,12 @@ def tick(root: Path | str, at: datetime, ledger_url: str | None = None, workers:
          should_stop=None, on_outcome=None, ws: Workspace | None = None) -> TickResult:
     """Plan, then run what is due (oldest first, `max_catch_up` per job), one tick per workspace at a time."""
     from runner.core.planner import job_plans, tasks_for
+    from runner.core.workspace import producer_windows
     from runner.engine import gate
     from runner.engine.pool import run_tasks
-    from runner.engine.window import RunContext, producer_windows
-    from runner.io.ledger.store import HeldLock, owner_id
+    from runner.engine.window import RunContext
+    from runner.io.ledger.leases import HeldLock
+    from runner.io.ledger.owners import owner_id
     from runner.io.outputs import sweep_temporaries
 
     ws = ws or load_workspace(root, thorough=False)
@@ -513,8 +519,9 @@ def _verify_output(ws: Workspace, job: str, row: dict[str, Any]) -> tuple[str | 
     import sqlalchemy as sa
 
     from runner.core.paths import database_url
+    from runner.io.files import file_sha256
     from runner.io.outputs import read_table_digest
-    from runner.io.readers import file_sha256, table_rows
+    from runner.io.readers import table_rows
 
     out = ws.jobs[job].spec.output
     if out.path is not None:

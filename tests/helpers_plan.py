@@ -229,7 +229,8 @@ def gated_tick(root: Path, at: datetime, ws: Any = None) -> Any:
 
     Returns None when the gate held (an idle tick that stopped early), else api.tick's TickResult.
     """
-    from runner import api, gate
+    from runner import api
+    from runner.engine import gate
 
     if gate.fresh(root.resolve(), at, None) is not False:
         return None

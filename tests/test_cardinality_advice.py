@@ -1,6 +1,6 @@
 """Batch-size advice in `weir check`: grouping or splitting by a nearly unique column is warned about.
 
-The rule is common practice (named in runner/cardinality.py): work is grouped and
+The rule is common practice (named in runner/core/advice.py): work is grouped and
 split by low-cardinality attributes (a date, a category, a method), never by
 ids or raw timestamps. Distinct counts expected here come from Python's csv
 module and sets over the same files weir samples. The data is the invented

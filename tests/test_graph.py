@@ -11,7 +11,8 @@ from zoneinfo import ZoneInfo
 
 import pytest
 
-from runner.core.graph import build_graph, downstream, order, render, upstream_windows
+from runner.core.drawing import render
+from runner.core.graph import links, order_links, upstream_windows
 from runner.engine.loading import load_workspace
 from runner.errors import SpecProblems
 from runner.model.spec import JobInput, load_job
@@ -59,7 +60,7 @@ def test_edges_run_from_producer_to_consumer_and_carry_the_input_names(bikes):
 
 
 def test_order_is_a_topological_order_with_ties_broken_by_name(bikes):
-    names = order(bikes.graph)
+    names = bikes.order
     # the standard library's graphlib.TopologicalSorter as an independent check
     # that such an order exists (it raises CycleError otherwise)
     sorter = graphlib.TopologicalSorter({n: set(bikes.graph.predecessors(n)) for n in bikes.graph})
@@ -72,19 +73,19 @@ def test_order_is_a_topological_order_with_ties_broken_by_name(bikes):
 
 def test_order_does_not_depend_on_the_order_files_were_read(bikes):
     jobs = dict(reversed(list(bikes.jobs.items())))
-    assert order(build_graph(jobs)) == order(bikes.graph)
+    assert order_links(links(jobs)) == bikes.order
 
 
 def test_downstream_adds_every_consumer_transitively_in_order(bikes):
-    assert downstream(bikes.graph, ["rides_hourly"]) == ["rides_hourly", "rides_daily", "zone_weekly", "alerts"]
-    assert downstream(bikes.graph, ["dock_fleet"]) == ["dock_fleet"]
+    assert bikes.downstream(["rides_hourly"]) == ["rides_hourly", "rides_daily", "zone_weekly", "alerts"]
+    assert bikes.downstream(["dock_fleet"]) == ["dock_fleet"]
     assert bikes.select(["alerts", "rides_hourly"]) == ["rides_hourly", "alerts"]
 
 
 def test_text_drawing_lists_each_job_with_what_it_reads(bikes):
     text = render(bikes.graph, bikes.jobs, "text")
     lines = text.splitlines()
-    assert [ln.split()[0] for ln in lines] == order(bikes.graph)
+    assert [ln.split()[0] for ln in lines] == bikes.order
     assert "rides_daily  <- rides_hourly (hourly)" in lines
     assert "zone_weekly  <- rides_daily (daily); rides_hourly (hourly)" in lines
     assert "dock_fleet  <- itself, earlier windows (before)" in lines
@@ -113,10 +114,6 @@ def test_mermaid_drawing_is_a_flowchart_with_every_edge(bikes):
     assert edges == set(bikes.graph.edges)
     assert re.search(r"^\s*dock_fleet -\.->\|before, earlier windows\| dock_fleet$", text, re.M)
     assert {m for m in re.findall(r"^\s*(\w+)\[\1\]$", text, re.M)} == set(bikes.jobs)
-
-
-def test_unknown_format_is_drawn_as_text(bikes):
-    assert render(bikes.graph, bikes.jobs, "text") == render(bikes.graph, bikes.jobs, "other")
 
 
 # ---------------------------------------------------------------- producer windows a consumer reads

@@ -181,7 +181,7 @@ def test_a_file_output_onto_a_table_outputs_database_is_refused(tmp_path: Path):
 
 def test_checking_outputs_renders_a_plain_template_vectorized_not_window_by_window(tmp_path: Path, monkeypatch):
     """Hardening item 6: a year of windows is compared without rendering each window in Python."""
-    from runner.core import graph, paths
+    from runner.core import paths, validation
     from runner.model.spec import load_job
 
     root = workspace(tmp_path / "ws", {
@@ -191,7 +191,7 @@ def test_checking_outputs_renders_a_plain_template_vectorized_not_window_by_wind
     jobs = {name: load_job(root / "jobs" / f"{name}.yaml") for name in ("hourly_a", "hourly_b")}
     calls = []
     monkeypatch.setattr(paths, "render", lambda *a: calls.append(a) or "")
-    found = graph.output_problems(jobs, root)
+    found = validation.output_problems(jobs, root)
     assert calls == []
     assert [p.message.split(" (")[0] for p in found] == ["job 'hourly_a' already writes state/out/2026-01-01/00.csv"]
 

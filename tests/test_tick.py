@@ -148,7 +148,8 @@ def test_a_longer_outage_is_caught_up_over_several_ticks_saying_how_many_remain(
 
 def test_a_second_tick_exits_at_once_with_status_0_while_another_holds_the_workspace(tmp_path):
     from runner import api
-    from runner.io.ledger.store import HeldLock, Ledger, default_url
+    from runner.io.ledger.leases import HeldLock
+    from runner.io.ledger.store import Ledger, default_url
 
     start = datetime(2026, 3, 28, tzinfo=UTC)
     root = write_jobs(tmp_path / "ws", {"rides_hourly": hourly_job("2026-03-28T00:00", "2026-03-28T02:00")})

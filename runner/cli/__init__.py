@@ -174,7 +174,7 @@ def schema() -> None:
 def graph(obj: Context, fmt: str) -> None:
     """Print the job graph: which job reads which."""
     from runner import api
-    from runner.core.graph import render
+    from runner.core.drawing import render
 
     ws = api.workspace(obj.root)
     click.echo(render(ws.graph, ws.jobs, fmt), nl=False)

@@ -11,8 +11,13 @@ keeps each run short and bounded in memory.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
+
+from runner.core.sqlcheck import aliases, groupings
+from runner.errors import Problem
+from runner.model.spec import Job, SqlStep
 
 if TYPE_CHECKING:
     import polars as pl
@@ -79,3 +84,52 @@ def advise_job(job: str, cadence: str, stats: pl.DataFrame) -> JobAdvice:
     if not advice.suggestions:
         advice.suggestions.append("window size looks right")
     return advice
+
+
+
+
+
+# ---------------------------------------------------------------- grouping by a nearly unique column
+#
+# A SQL step that groups (`GROUP BY`) or splits (`PARTITION BY`) by a column
+# whose values are almost all distinct, such as an id or a raw timestamp, makes
+# about one group per row: the work is cut into batches of one. Common practice
+# (a rule of thumb, not a standard) is to group and split by low-cardinality
+# attributes such as a date, a category or a method, never by ids or raw
+# timestamps; a timestamp is truncated first (`date_trunc('hour', started_at)`).
+# The judgement is made on a small sample of the latest input, read by
+# `runner.engine.samples` for `weir check` only; it is advice and never fails it.
+
+MIN_ROWS = 100  # a smaller sample says nothing about how many distinct values there are
+NEARLY_UNIQUE = 0.5  # distinct values / sampled rows above this: about one group per row
+
+
+def grouped_columns(job: Job) -> set[str]:
+    """The bare columns the job's SQL steps group or split by (what a sample needs to read)."""
+    return {g.column for step in job.spec.steps if isinstance(step, SqlStep) for g in groupings(step.sql)}
+
+
+def grouping_advice(job: Job, samples: Mapping[str, pl.DataFrame | None]) -> list[Problem]:
+    """Warnings for the SQL steps of one job that group or split by a nearly unique column of
+    a file input, judged on `samples` (input name -> rows of its newest files, or None)."""
+    wanted = [(i, g) for i, step in enumerate(job.spec.steps) if isinstance(step, SqlStep)
+              for g in groupings(step.sql)]
+    out: list[Problem] = []
+    for input_name, data in samples.items():
+        if data is None or data.height < MIN_ROWS:
+            continue
+        for index, g in wanted:
+            step = job.spec.steps[index]
+            assert isinstance(step, SqlStep)
+            if g.column not in data.columns or (g.table is not None and g.table != input_name
+                                                 and g.table not in aliases(step.sql, input_name)):
+                continue
+            distinct = data[g.column].n_unique()
+            if distinct / data.height > NEARLY_UNIQUE:
+                out.append(job.problem(("steps", index, "sql"), (
+                    f"step {index + 1} {g.clause} by {g.column}, which has {distinct:,} distinct values in "
+                    f"{data.height:,} sampled rows of input {input_name} (groups of "
+                    f"{data.height / distinct:.1f} rows on average); group or split by a low-cardinality "
+                    "column (a date, a category, a method), and truncate timestamps first "
+                    "(date_trunc('hour', ...))"), severity="warning"))
+    return out

@@ -1,8 +1,9 @@
 """Path templates: `{start:%Y-%m-%d}` and `{end:...}` rendered for a window; the places weir keeps.
 
 Templates are formatted with Python's `str.format`, `start` and `end` being
-the window's bounds as aware datetimes in the job's timezone. Pure functions
-(but `escapes`, which resolves symbolic links).
+the window's bounds as aware datetimes in the job's timezone. Pure functions:
+whether a path stays inside the workspace once symbolic links are followed is
+asked of the disk by `runner.io.files.escapes`.
 """
 
 from __future__ import annotations
@@ -33,6 +34,8 @@ OWNED = {
     f"{INPUT_CHECKS}-shm": "that record's shared memory", f"{INPUT_CHECKS}-journal": "that record's journal",
     "state/README.md": "the state folder's README", "state/.gitignore": "the state folder's .gitignore",
 }
+PLACEHOLDER = re.compile(r"\{[^{}]*\}")  # one {start:...} or {end:...} field of a path template
+
 OWNED_FOLDERS = {LOGS: "the logs", "jobs": "the job files"}
 
 _STEP_CODES = [  # finest strftime code in a template -> the step that changes it
@@ -140,23 +143,6 @@ def _finest_step(template: str) -> timedelta | None:
     if re.search(r"%[yYCg]", specs):
         return timedelta(days=365)
     return None
-
-
-def escapes(root: str | os.PathLike[str], relative: str) -> bool:
-    """True when `relative`, resolved under `root` (symbolic links followed), would land outside it.
-
-    Resolved afresh on every call (nothing remembered): a folder may be swapped
-    for a link between two writes. Writers check again at open time
-    (`sinks.open_folder`).
-    """
-    if os.path.isabs(relative):
-        return True
-    base = os.path.realpath(root)
-    folder, name = os.path.split(os.path.normpath(os.path.join(base, relative)))
-    target = os.path.join(os.path.realpath(folder), name)
-    if os.path.islink(target):
-        target = os.path.realpath(target)
-    return os.path.commonpath([base, target]) != base
 
 
 def output_paths(template: str, span: WindowSpan, most: int = 20_000) -> tuple[WindowSpan, pl.Series]:

@@ -14,7 +14,7 @@ from typing import TYPE_CHECKING, Any
 from runner.core import fingerprints as fp
 from runner.core.graph import upstream_windows
 from runner.core.windows import Cadence, Window
-from runner.engine.loading import Workspace
+from runner.core.workspace import Workspace
 from runner.model.spec import FileInput, JobInput
 from runner.model.timeutil import format_instant, from_us, parse_utc, to_us
 

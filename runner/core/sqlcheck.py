@@ -343,3 +343,69 @@ def _resolve_step(index: int, sql: str, known: dict[str, pl.Schema | None], by_l
 def _first_line(exc: BaseException) -> str:
     text = str(exc).strip().splitlines()
     return text[0] if text else type(exc).__name__
+
+
+# ---------------------------------------------------------------- groupings (for batch-size advice)
+
+_CLAUSE = re.compile(r"\b(GROUP|PARTITION)\s+BY\b", re.I)
+
+
+_END = re.compile(
+    r"\b(HAVING|ORDER|LIMIT|OFFSET|FETCH|WINDOW|QUALIFY|UNION|INTERSECT|EXCEPT|ROWS|RANGE|GROUPS|SELECT|FROM|WHERE)\b",
+    re.I)
+
+
+_COLUMN = re.compile(r'^(?:("?)([A-Za-z_]\w*)\1\.)?("?)([A-Za-z_]\w*)\3$')
+
+
+@dataclass(frozen=True)
+class Grouping:
+    """A bare column named in a GROUP BY or PARTITION BY list."""
+
+    clause: str  # "groups" or "splits"
+    table: str | None  # the qualifier, when written as table.column
+    column: str
+
+
+def groupings(sql: str) -> list[Grouping]:
+    """The bare columns that `sql` groups or splits by (expressions and ordinals are skipped)."""
+    text = strip_sql(sql)
+    out: list[Grouping] = []
+    for m in _CLAUSE.finditer(text):
+        clause = "groups" if m.group(1).upper() == "GROUP" else "splits"
+        for item in _items(text, m.end()):
+            c = _COLUMN.match(item.strip())
+            if c and c.group(4).upper() not in ("ALL", "ROLLUP", "CUBE"):
+                out.append(Grouping(clause, c.group(2), c.group(4)))
+    return out
+
+
+def _items(text: str, start: int) -> list[str]:
+    """The comma-separated list starting at `start`, up to the clause's end (depth-aware)."""
+    items, depth, begin, i = [], 0, start, start
+    while i < len(text):
+        ch = text[i]
+        if ch == "(":
+            depth += 1
+        elif ch == ")":
+            if depth == 0:
+                break
+            depth -= 1
+        elif ch == ";" and depth == 0:
+            break
+        elif ch == "," and depth == 0:
+            items.append(text[begin:i])
+            begin = i + 1
+        elif (depth == 0 and ch.isalpha() and not (text[i - 1].isalnum() or text[i - 1] == "_")
+              and _END.match(text, i)):
+            break
+        i += 1
+    items.append(text[begin:i])
+    return [s for s in items if s.strip()]
+
+
+def aliases(sql: str, input_name: str) -> set[str]:
+    """Names a SQL step gives an input (`FROM rides AS r`, `FROM rides r`)."""
+    found = re.findall(rf"\b{re.escape(input_name)}\s+(?:AS\s+)?([A-Za-z_]\w*)", strip_sql(sql), re.I)
+    return {a for a in found if not _END.fullmatch(a) and a.upper() not in ("ON", "JOIN", "USING", "INNER",
+                                                                              "LEFT", "RIGHT", "FULL", "CROSS")}

@@ -17,19 +17,17 @@ This module uses the standard library only, so that the fast path stays fast.
 from __future__ import annotations
 
 import contextlib
-import glob
 import hashlib
 import json
 import os
-import re
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
 from runner.core.paths import LEDGER, TICK_GATE
+from runner.io.files import stat_files, wildcard
 
 GATE = Path(TICK_GATE)
-_PLACEHOLDER = re.compile(r"\{[^{}]*\}")
 
 
 def _stat(path: str) -> tuple[int, int] | None:
@@ -82,10 +80,8 @@ def observe_files(root: Path, templates: list[str], modules: list[str]) -> str:
     for module in modules:
         h.update(f"module {module} {_stat(module)}\n".encode())
     for template in templates:
-        wild = _PLACEHOLDER.sub("*", template)
-        full = wild if os.path.isabs(wild) else os.path.join(root, wild)
-        for path in sorted(glob.glob(full, recursive=True)):
-            h.update(f"input {path} {_stat(path)}\n".encode())
+        for path, size, mtime_ns in sorted(stat_files(wildcard(root, template))):
+            h.update(f"input {path} {(size, mtime_ns)}\n".encode())
     return h.hexdigest()
 
 

@@ -16,7 +16,7 @@ from typing import Any
 from runner.core import fingerprints as fp
 from runner.core.planner import Probe, Snapshot, assess
 from runner.core.windows import Window
-from runner.engine.loading import Workspace
+from runner.core.workspace import Workspace
 from runner.engine.window import spec_and_code
 from runner.io.files import FileIndex
 from runner.io.ledger.store import Ledger

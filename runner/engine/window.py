@@ -29,11 +29,11 @@ from typing import Any
 
 from runner import __version__
 from runner.core import fingerprints as fp
-from runner.core.graph import upstream_windows
 from runner.core.paths import render
 from runner.core.windows import Window
-from runner.engine.loading import Workspace
-from runner.io.ledger.store import Ledger, owner_id, utc_text
+from runner.core.workspace import Workspace, producer_windows
+from runner.io.ledger.owners import owner_id
+from runner.io.ledger.store import Ledger, utc_text
 from runner.model.spec import DatabaseInput, FileInput, JobInput
 
 # Below this much input a window runs in memory in one go (no streaming engine
@@ -145,18 +145,6 @@ def spec_and_code(ws: Workspace, job: str) -> tuple[fp.Part, fp.Part]:
         spec = ws.jobs[job].spec
         cache[job] = (fp.spec_part(spec), fp.code_part(code_pieces(spec, ws.root)))
     return cache[job]
-
-
-def producer_windows(ws: Workspace, job: str, window: Window) -> list[tuple[str, str, Window]]:
-    """(input, producer job, producer window) for every job input of a window."""
-    out = []
-    cad = ws.cadence(job)
-    for name, source in ws.jobs[job].spec.inputs.items():
-        if isinstance(source, JobInput):
-            pcad = ws.cadence(source.job)
-            for w in upstream_windows(cad, window, pcad, source, same_job=source.job == job):
-                out.append((name, source.job, w))
-    return out
 
 
 def prepare(ctx: RunContext, job: str, window: Window, database_entries: list[dict[str, Any]] | None = None
@@ -594,8 +582,8 @@ def record_failure(ctx: RunContext, attempt: Attempt, message: str, run_id: int 
 
 def _intact_and_current(ctx: RunContext, job: str, window: Window, fingerprint: str) -> bool:
     """Whether the window is recorded done with `fingerprint` and its output is still what was recorded."""
+    from runner.io.files import file_sha256
     from runner.io.outputs import read_table_digest
-    from runner.io.readers import file_sha256
 
     state = ctx.ledger.state_row(job, window.key)
     if (state is None or state["state"] != "done" or state.get("output_state")

@@ -1,26 +1,47 @@
-"""A listing of one file input's candidate files, for many windows at once.
+"""Files on disk: the one walk over an input template's files, listings for many windows at once,
+manifests and hashing, and the check that a path stays inside the workspace once links are followed.
 
 Globbing a path template once per window costs one directory walk per
 window; planning a year of hourly windows would walk the landing folders
 8,760 times. `FileIndex` walks once (the template with every placeholder
 turned into `*`), groups files by folder, and answers each window's rendered
 patterns from that listing. The manifest entries it returns are the ones
-`sources.find_files` returns, so fingerprints computed either way agree.
+`readers.find_files` returns, so fingerprints computed either way agree.
 """
 
 from __future__ import annotations
 
 import fnmatch
 import glob
+import hashlib
 import os
-import re
+import stat
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from runner.core.paths import expand
+from runner.core.paths import PLACEHOLDER
 
-_PLACEHOLDER = re.compile(r"\{[^{}]*\}")
+
+def wildcard(root: Path | str, template: str) -> str:
+    """The glob pattern of every file a path template can match: each placeholder as `*`, under `root`."""
+    wild = PLACEHOLDER.sub("*", template)
+    return wild if os.path.isabs(wild) else os.path.join(root, wild)
+
+
+def stat_files(pattern: str) -> list[tuple[str, int, int]]:
+    """(path, size, mtime_ns) of each regular file matching a glob pattern (`**` recursive; a
+    pattern without wildcards is the one path), in no particular order. Files that vanish or
+    cannot be read while walking are left out."""
+    out = []
+    for path in glob.glob(pattern, recursive=True) if glob.has_magic(pattern) else [pattern]:
+        try:
+            st = os.stat(path)
+        except OSError:
+            continue
+        if stat.S_ISREG(st.st_mode):
+            out.append((path, st.st_size, st.st_mtime_ns))
+    return out
 
 
 @dataclass
@@ -30,25 +51,15 @@ class FileIndex:
     root: Path
     template: str
     folders: dict[str, list[tuple[str, int, int]]] = field(default_factory=dict)
-    listed: bool = False
     by_name: dict[str, dict[str, tuple[int, int]]] = field(default_factory=dict)
     real_folders: dict[str, str] = field(default_factory=dict)  # folder -> its real path (inputfiles.confine)
 
     @classmethod
     def build(cls, root: Path, template: str) -> FileIndex:
         index = cls(root=root, template=template)
-        wild = _PLACEHOLDER.sub("*", template)
-        full = wild if os.path.isabs(wild) else os.path.join(root, wild)
-        for path in glob.glob(full, recursive=True):
-            try:
-                st = os.stat(path)
-            except OSError:
-                continue
-            if not os.path.isfile(path):
-                continue
+        for path, size, mtime_ns in stat_files(wildcard(root, template)):
             folder, name = os.path.split(path)
-            index.folders.setdefault(folder, []).append((name, st.st_size, st.st_mtime_ns))
-        index.listed = True
+            index.folders.setdefault(folder, []).append((name, size, mtime_ns))
         return index
 
     def matches(self, pattern: str) -> list[tuple[str, int, int]]:
@@ -56,12 +67,7 @@ class FileIndex:
         full = pattern if os.path.isabs(pattern) else os.path.join(self.root, pattern)
         folder, name = os.path.split(full)
         if glob.has_magic(folder):
-            out = []
-            for path in glob.glob(full, recursive=True):
-                if os.path.isfile(path):
-                    st = os.stat(path)
-                    out.append((path, st.st_size, st.st_mtime_ns))
-            return out
+            return stat_files(full)
         key = os.path.normpath(folder)
         entries = self.folders.get(key) or self.folders.get(folder) or []
         if not glob.has_magic(name):
@@ -81,13 +87,7 @@ def listing(root: Path, patterns: list[str], index: FileIndex | None = None) -> 
         if index is not None:
             hits = index.matches(pattern)
         else:
-            full = pattern if os.path.isabs(pattern) else os.path.join(root, pattern)
-            hits = []
-            paths = glob.glob(full, recursive=True) if glob.has_magic(full) else [full]
-            for p in paths:
-                if os.path.isfile(p):
-                    st = os.stat(p)
-                    hits.append((p, st.st_size, st.st_mtime_ns))
+            hits = stat_files(pattern if os.path.isabs(pattern) else os.path.join(root, pattern))
         for hit in hits:
             found[os.path.normpath(hit[0])] = (os.path.normpath(hit[0]), hit[1], hit[2])
     return [found[k] for k in sorted(found)]
@@ -109,9 +109,7 @@ def relative(root: Path, path: str) -> str:
 
 
 def manifest(root: Path, name: str, files: list[tuple[str, int, int]], content: bool) -> list[dict[str, Any]]:
-    """Fingerprint entries of an input's files (see `fingerprint.input_part`)."""
-    from runner.io.readers import file_sha256
-
+    """Fingerprint entries of an input's files (see `fingerprints.input_part`)."""
     out = []
     for path, size, mtime_ns in files:
         entry: dict[str, Any] = {"input": name, "path": relative(root, path)}
@@ -124,8 +122,27 @@ def manifest(root: Path, name: str, files: list[tuple[str, int, int]], content: 
     return out
 
 
-def window_files(root: Path, template: str, window: Any, index: FileIndex | None = None
-                 ) -> tuple[list[str], list[tuple[str, int, int]]]:
-    """The rendered patterns of a window and the files they match."""
-    patterns = expand(template, window)
-    return patterns, listing(root, patterns, index)
+def escapes(root: str | os.PathLike[str], relative: str) -> bool:
+    """True when `relative`, resolved under `root` (symbolic links followed), would land outside it.
+
+    Resolved afresh on every call (nothing remembered): a folder may be swapped
+    for a link between two writes. Writers check again at open time
+    (`outputs.open_folder`).
+    """
+    if os.path.isabs(relative):
+        return True
+    base = os.path.realpath(root)
+    folder, name = os.path.split(os.path.normpath(os.path.join(base, relative)))
+    target = os.path.join(os.path.realpath(folder), name)
+    if os.path.islink(target):
+        target = os.path.realpath(target)
+    return os.path.commonpath([base, target]) != base
+
+
+def file_sha256(path: str | Path) -> str:
+    """The SHA-256 of a file's bytes, in hex (read in 1 MiB blocks)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()

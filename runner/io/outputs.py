@@ -32,16 +32,15 @@ from pathlib import Path
 from typing import IO, TYPE_CHECKING, Any
 
 from runner.core.fingerprints import batches_digest, frame_digest, sort_columns
-from runner.core.paths import escapes
 from runner.errors import WeirError
-from runner.io.readers import file_sha256
+from runner.io.files import escapes, file_sha256
 
 if TYPE_CHECKING:
     from datetime import datetime
 
     import polars as pl
 
-    from runner.engine.loading import Workspace
+    from runner.core.workspace import Workspace
 
 STAMPS = ("window_start", "window_end", "run_id", "code_version")
 TMP_MARK = ".weir-tmp-"
@@ -201,7 +200,7 @@ def stale_temporary(name: str, mtime: float, now: float) -> bool:
     Its process, of this host, has ended; or (another host's, or a reused
     process id) it was last written over `STALE_AFTER` seconds ago.
     """
-    from runner.io.ledger.leases import process_ended
+    from runner.io.ledger.owners import process_ended
 
     found = _TMP_NAME.match(name)
     if found is None:

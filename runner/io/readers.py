@@ -13,7 +13,6 @@
 
 from __future__ import annotations
 
-import hashlib
 import threading
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -68,14 +67,6 @@ def files_for_patterns(root: Path, name: str, source: FileInput, patterns: list[
     entries = manifest(root, name, files, source.fingerprint == "content")
     newest = max((m for _, _, m in files), default=None)
     return FileSet(name, patterns, [p for p, _, _ in files], entries, newest)
-
-
-def file_sha256(path: str | Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
 
 
 def file_format(path: str, declared: str | None) -> str:

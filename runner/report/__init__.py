@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
-    from runner.engine.loading import Workspace
+    from runner.core.workspace import Workspace
     from runner.io.ledger.store import Ledger
 
 

@@ -27,7 +27,7 @@ if TYPE_CHECKING:
     import polars as pl
 
     from runner.core.windows import Cadence
-    from runner.engine.loading import Workspace
+    from runner.core.workspace import Workspace
     from runner.io.ledger.store import Ledger
 
 # The planner's state values -> the names shown (page, metrics, --json counts). The only such table.

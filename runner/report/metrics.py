@@ -39,7 +39,7 @@ from datetime import UTC, datetime
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
-    from runner.engine.loading import Workspace
+    from runner.core.workspace import Workspace
     from runner.io.ledger.store import Ledger
     from runner.report.data import JobView, ReportData
 

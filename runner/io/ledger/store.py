@@ -20,7 +20,7 @@ Tables
 Instants are stored as RFC 3339 UTC text (`2026-01-01T00:00:00Z`); windows are
 keyed by their UTC start. Claims and locks are taken with a plain INSERT (the
 primary key makes it atomic) or, when the holder is free (its lease expired,
-or it is provably gone: `leases.holder_gone`), a conditional UPDATE; both are
+or it is provably gone: `owners.holder_gone`), a conditional UPDATE; both are
 atomic on every database, so no dialect-specific locking is needed and
 several hosts can share one PostgreSQL ledger. Lease expiry is measured on
 the database server's clock, so hosts whose clocks disagree agree on it. A
@@ -43,9 +43,7 @@ import sqlalchemy as sa
 from sqlalchemy import exc as sa_exc
 
 from runner.errors import LedgerError
-from runner.io.ledger.leases import HeldLock, holder_gone, owner_id
-
-__all__ = ["HeldLock", "Ledger", "default_url", "owner_id", "utc_text"]
+from runner.io.ledger.owners import holder_gone
 
 if TYPE_CHECKING:
     import polars as pl
@@ -287,7 +285,7 @@ class Ledger:
     # ------------------------------------------------------------ claims and locks
 
     def claim(self, job: str, key: str, owner: str, ttl: float) -> bool:
-        """Take the claim on (job, window) unless a live holder has it (see `leases.holder_gone`)."""
+        """Take the claim on (job, window) unless a live holder has it (see `owners.holder_gone`)."""
         return self._lease(claims, {"job": job, "window_key": key}, owner, ttl)
 
     def release(self, job: str, key: str, owner: str, conn: sa.Connection | None = None) -> None:
