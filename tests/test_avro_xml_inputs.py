@@ -23,9 +23,9 @@ from runner.io.avro_reader import read_avro
 from runner.io.casts import TYPED, cast_frame, column_rules, plan_casts
 from runner.io.rejects import WHERE, UnreadableFile
 from runner.io.xml_reader import read_xml
+from runner.model.columns import Column
 from runner.model.schemafiles.avro import columns_from_avro
 from runner.model.schemafiles.xsd import columns_from_xsd
-from runner.model.spec import Column
 
 UTC = dt.UTC
 

@@ -272,7 +272,7 @@ def test_any_rfc3339_timestamp_reads_as_datetime_fromisoformat_reads_it(items, s
     import polars as pl
 
     from runner.io.casts import apply_fast, cast_frame, parse_datetime, plan_casts
-    from runner.model.spec import Column
+    from runner.model.columns import Column
 
     texts = [_rfc3339(m, off, d, z, sep) for m, off, d, z, sep in items]
     frame = pl.DataFrame({"t": texts})

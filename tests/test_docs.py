@@ -8,7 +8,7 @@ from pathlib import Path
 import clidoc
 from pydantic import BaseModel
 
-from runner.model import spec
+from runner.model import columns, settings, spec
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -24,9 +24,9 @@ def _field_names(model: type[BaseModel]) -> set[str]:
 def test_job_file_reference_names_every_key_of_every_model():
     text = (ROOT / "docs" / "jobs.md").read_text()
     documented = set(re.findall(r"`([a-z_]+)`", text))
-    models = [spec.JobSpec, spec.WindowDecl, spec.FileInput, spec.JobInput, spec.DatabaseInput, spec.Column,
+    models = [spec.JobSpec, spec.WindowDecl, spec.FileInput, spec.JobInput, spec.DatabaseInput, columns.Column,
               spec.SqlStep, spec.PythonStep, spec.Output, spec.OutputCheck, spec.RowsCheck, spec.ChangeCheck,
-              spec.WorkspaceSettings]
+              settings.WorkspaceSettings]
     missing = {f"{m.__name__}.{f}" for m in models for f in _field_names(m) if f not in documented}
     assert not missing
 

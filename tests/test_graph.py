@@ -15,7 +15,8 @@ from runner.core.drawing import render
 from runner.core.graph import links, order_links, upstream_windows
 from runner.engine.loading import load_workspace
 from runner.errors import SpecProblems
-from runner.model.spec import JobInput, load_job
+from runner.model.loading import load_job
+from runner.model.spec import JobInput
 
 ROOT = Path(__file__).resolve().parent.parent
 

@@ -28,7 +28,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from runner.errors import SpecProblems
-from runner.model.spec import MAX_FILE_BYTES, load_job
+from runner.model.loading import MAX_FILE_BYTES, load_job
 from runner.model.yamlfile import MAX_ALIAS_VALUES, MAX_DEPTH, MAX_VALUES
 
 LINE = re.compile(r"^(?P<file>\S+\.ya?ml):(?P<line>\d+):(?P<col>\d+): (?P<rest>.*)$")

@@ -182,7 +182,7 @@ def test_a_file_output_onto_a_table_outputs_database_is_refused(tmp_path: Path):
 def test_checking_outputs_renders_a_plain_template_vectorized_not_window_by_window(tmp_path: Path, monkeypatch):
     """Hardening item 6: a year of windows is compared without rendering each window in Python."""
     from runner.core import paths, validation
-    from runner.model.spec import load_job
+    from runner.model.loading import load_job
 
     root = workspace(tmp_path / "ws", {
         "hourly_a": file_job("state/out/{start:%F/%H}.csv", "{every: 1h, start: 2026-01-01, end: 2027-01-01}"),

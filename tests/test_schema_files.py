@@ -19,6 +19,7 @@ import pytest
 import yaml
 from helpers_schemas import RIDES_XSD
 
+from runner.model.columns import Column
 from runner.model.schemafiles import (
     SchemaFileError,
     columns_text,
@@ -30,7 +31,6 @@ from runner.model.schemafiles.avro import columns_from_avro
 from runner.model.schemafiles.jsonschema import columns_from_jsonschema
 from runner.model.schemafiles.proto import columns_from_proto
 from runner.model.schemafiles.xsd import columns_from_xsd
-from runner.model.spec import Column
 
 
 def write(path: Path, text: str) -> Path:

@@ -15,7 +15,7 @@ from pathlib import Path
 
 import pytest
 
-from runner.model.spec import load_job
+from runner.model.loading import load_job
 
 LINE = re.compile(r"^(?P<file>\S+\.ya?ml):(?P<line>\d+):(?P<col>\d+): (?P<rest>.*)$")
 

@@ -160,7 +160,7 @@ def test_columns_of_an_input_with_a_schema_are_still_checked_through_aliases(wei
 def test_a_step_reading_a_table_of_unknown_columns_has_an_unknown_output_schema(tmp_path):
     """Hardening item 9: `SELECT *, 1 AS x` over an input without a schema is not `{x}` alone."""
     from runner.core.sqlcheck import resolve_job
-    from runner.model.spec import load_job
+    from runner.model.loading import load_job
 
     file = tmp_path / "pay_daily.yaml"
     file.write_text(PAY.replace("SQL", json.dumps("SELECT *, 1 AS x FROM pay")))

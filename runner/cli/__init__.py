@@ -162,7 +162,7 @@ def windows(obj: Context, job: str, lo: str | None, hi: str | None, at: str | No
 @cli.command()
 def schema() -> None:
     """Print the JSON Schema of a job file (for editors that validate YAML as you type)."""
-    from runner.model.spec import job_schema
+    from runner.model.loading import job_schema
 
     _emit_json(job_schema())
 

@@ -33,7 +33,7 @@ def build_graph(jobs: Mapping[str, Job]) -> nx.DiGraph:
     return graph
 
 
-def cycles(graph: nx.DiGraph) -> list[list[str]]:
+def find_cycles(graph: nx.DiGraph) -> list[list[str]]:
     """Each elementary cycle once, rotated to start at its smallest name."""
     import networkx as nx
 

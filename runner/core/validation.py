@@ -15,7 +15,7 @@ from collections.abc import Mapping
 from datetime import timedelta
 from typing import TYPE_CHECKING
 
-from runner.core.drawing import build_graph
+from runner.core.drawing import build_graph, find_cycles
 from runner.core.graph import links, order_links, output_span
 from runner.core.windows import Cadence, WindowSpan
 from runner.errors import Problem
@@ -50,7 +50,7 @@ def graph_problems(jobs: Mapping[str, Job], graph: nx.DiGraph | None = None,
         cycles: list[list[str]] = []
     except ValueError:  # only now is the graph library needed: to list every cycle
         graph = graph if graph is not None else build_graph(jobs)
-        cycles = cycles(graph)
+        cycles = find_cycles(graph)
     for cycle in cycles:
         path = " -> ".join([*cycle, cycle[0]])
         first, second = cycle[0], cycle[1] if len(cycle) > 1 else cycle[0]

@@ -18,7 +18,8 @@ from runner.core.graph import upstream_windows
 from runner.core.validation import sql_problems
 from runner.core.windows import Cadence, Window
 from runner.errors import Problem, UsageError
-from runner.model.spec import Job, JobInput, WorkspaceSettings
+from runner.model.settings import WorkspaceSettings
+from runner.model.spec import Job, JobInput
 
 JOB_SUFFIXES = (".yaml", ".yml")
 

@@ -14,7 +14,9 @@ from pathlib import Path
 from runner.core.validation import acyclic, graph_problems, sql_problems
 from runner.core.workspace import JOB_SUFFIXES, Workspace
 from runner.errors import Problem, SpecProblems, UsageError
-from runner.model.spec import SETTINGS_FILE, Job, WorkspaceSettings, load_job, load_settings
+from runner.model.loading import load_job, load_settings
+from runner.model.settings import SETTINGS_FILE, WorkspaceSettings
+from runner.model.spec import Job
 
 
 def job_files(root: Path) -> list[Path]:

@@ -25,7 +25,8 @@ from runner.model.coltypes import polars_dtype
 if TYPE_CHECKING:
     import polars as pl
 
-    from runner.model.spec import Column, OutputCheck
+    from runner.model.columns import Column
+    from runner.model.spec import OutputCheck
 
 EXAMPLES = 5
 TYPED = "__typed_"  # prefix of the typed copy of a declared column inside a batch

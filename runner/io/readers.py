@@ -19,7 +19,9 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from runner.io.inputfiles import BadRows, InputError
-from runner.model.spec import Column, DatabaseInput, FileInput, format_from_name
+from runner.model.columns import Column
+from runner.model.spec import DatabaseInput, FileInput
+from runner.model.templates import format_from_name
 
 if TYPE_CHECKING:
     import polars as pl

@@ -36,9 +36,10 @@ from pydantic import (
 )
 
 from runner.errors import Problem, SpecProblems
-from runner.model.spec import Duration, Identifier, Text, _child_type, _Model, dotted
+from runner.model.fields import Duration, Identifier, Model, Text
+from runner.model.loading import child_type
 from runner.model.timeutil import short_duration
-from runner.model.yamlfile import Marked
+from runner.model.yamlfile import Marked, dotted
 
 
 class EventKind(StrEnum):
@@ -57,7 +58,7 @@ _ENV_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 _WEBHOOK_ONLY = ("tries", "backoff", "budget", "secret_env")
 
 
-class Destination(_Model):
+class Destination(Model):
     """Where alerts go: a shell command or an HTTP webhook (exactly one), and which events."""
 
     command: Text | None = Field(
@@ -155,7 +156,7 @@ class Destination(_Model):
         return kind is EventKind.TEST or self.events is None or kind in self.events
 
 
-class AlertSettings(_Model):
+class AlertSettings(Model):
     """The `alerts:` mapping of the workspace settings file."""
 
     destinations: dict[Identifier, Destination] = Field(
@@ -213,7 +214,7 @@ def _keys(root: type[BaseModel], loc: tuple[Any, ...]) -> set[str]:
     """The keys a mapping at `loc` below `root` may have."""
     model: Any = root
     for part in loc:
-        model = _child_type(model, part)
+        model = child_type(model, part)
     if isinstance(model, type) and issubclass(model, BaseModel):
         return {info.alias or name for name, info in model.model_fields.items()}
     return set()

@@ -1,141 +1,40 @@
-"""Job-file models and loading, with `FILE:LINE:COL: key.path: message` errors.
+"""Job-file models: a job file is YAML validated by the pydantic models below.
 
-A job file is YAML validated by the pydantic models below. `load_job` parses
-one file and returns a `Job` (name, spec, source marks) or raises
-`SpecProblems` carrying *every* problem found in that file. The JSON Schema of
-a job file (`weir schema`) is generated from `JobSpec`.
+Reading a file and mapping validation errors onto its lines is
+`runner.model.loading`; a validated file becomes a `Job` (name, spec, marks).
 """
 
 from __future__ import annotations
 
 import difflib
 import re
-import types
-import typing
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 from pathlib import Path
-from typing import Annotated, Any, Literal, Union
+from typing import Annotated, Any, Literal
 
-import yaml
 from pydantic import (
     BaseModel,
     BeforeValidator,
-    ConfigDict,
     Discriminator,
     Field,
     Tag,
-    ValidationError,
     field_validator,
     model_validator,
 )
 
-from runner.errors import Problem, SpecProblems
-from runner.model.timeutil import BadValue, parse_duration, parse_instant, zone
-from runner.model.yamlfile import Marked, YamlLimit, load_marked, source_text
-
-
-def _text(value: Any) -> Any:
-    return source_text(value)
-
-
-def _duration(value: Any) -> timedelta:
-    try:
-        return parse_duration(value)
-    except BadValue as exc:
-        raise ValueError(str(exc)) from None
-
-
-Text = Annotated[str, BeforeValidator(_text)]
-Duration = Annotated[
-    timedelta,
-    BeforeValidator(_duration),
-    Field(json_schema_extra={"type": "string", "examples": ["10m", "1h", "7d", "PT10M"]}),
-]
-Identifier = Annotated[Text, Field(pattern=r"^[A-Za-z_][A-Za-z0-9_]*$")]
+from runner.errors import Problem
+from runner.model.columns import Column, column_value, text_encoding
+from runner.model.fields import Duration, Identifier, Model, Text
+from runner.model.templates import SAMPLE_TIME, check_template, format_from_name, short
+from runner.model.timeutil import BadValue, parse_instant, zone
+from runner.model.yamlfile import Marked, dotted, source_text
 
 _EVERY = re.compile(r"^\s*(\d+)\s*(m|h|d|w|mo|y)\s*$")
-_TYPE = re.compile(
-    r"^(?:str|int|float|bool|date|datetime(?:\((?P<tz>[^)]+)\))?|decimal\((?P<p>\d+)\s*,\s*(?P<s>\d+)\))$"
-)
 _RESERVED_NAMES = {"bounds"}
 
 
-class _Model(BaseModel):
-    model_config = ConfigDict(extra="forbid", populate_by_name=True, frozen=True, defer_build=True)
-
-
-class Column(_Model):
-    """One declared input column: its type and the rules each value must meet."""
-
-    type: Text = Field(
-        description="str, int, float, bool, date, datetime, datetime(ZONE) or decimal(P,S)"
-    )
-    nullable: bool = True
-    values: list[Any] | None = Field(default=None, description="the allowed values")
-    min: Any = None
-    max: Any = None
-    pattern: Text | None = Field(default=None, description="a regular expression each value must match")
-
-    @field_validator("type")
-    @classmethod
-    def _known_type(cls, value: str) -> str:
-        value = value.strip()
-        m = _TYPE.match(value)
-        if not m:
-            choices = ["str", "int", "float", "bool", "date", "datetime", "decimal(12,2)"]
-            close = difflib.get_close_matches(value, choices, n=1)
-            hint = f" (did you mean {close[0]!r}?)" if close else ""
-            raise ValueError(
-                f"unknown column type {value!r}{hint}; use str, int, float, bool, date, "
-                "datetime, datetime(ZONE) or decimal(P,S)"
-            )
-        if m.group("tz"):
-            try:
-                zone(m.group("tz").strip())
-            except BadValue as exc:
-                raise ValueError(str(exc)) from None
-        if m.group("p") and not (1 <= int(m.group("p")) <= 38 and 0 <= int(m.group("s")) <= int(m.group("p"))):
-            raise ValueError("decimal(P,S) needs 1 <= P <= 38 and 0 <= S <= P")
-        return value
-
-    @field_validator("pattern")
-    @classmethod
-    def _regex(cls, value: str | None) -> str | None:
-        if value is not None:
-            try:
-                re.compile(value)
-            except re.error as exc:
-                raise ValueError(f"bad regular expression: {exc}") from None
-        return value
-
-    @field_validator("values", mode="before")
-    @classmethod
-    def _value_texts(cls, value: Any) -> Any:
-        return value
-
-
-def text_encoding(name: str) -> str:
-    """A declared encoding, checked to be a text encoding Python's codecs know."""
-    import codecs
-
-    try:
-        info = codecs.lookup(name.strip())
-    except LookupError:
-        raise ValueError(f"unknown encoding {name!r}; use a name Python's codecs know, e.g. utf-8, latin-1, "
-                         "cp1252, utf-16") from None
-    if not getattr(info, "_is_text_encoding", True):
-        raise ValueError(f"{name!r} is not a text encoding")
-    return name.strip()
-
-
-def _column(value: Any) -> Any:
-    if isinstance(value, str):
-        return {"type": value}
-    return value
-
-
-ColumnDecl = Annotated[Column, BeforeValidator(_column)]
+ColumnDecl = Annotated[Column, BeforeValidator(column_value)]
 Columns = dict[Identifier, ColumnDecl]
 
 
@@ -154,7 +53,7 @@ def _percent(value: Any) -> float:
 Fraction = Annotated[float, BeforeValidator(_percent), Field(json_schema_extra={"examples": ["50%", 0.5]})]
 
 
-class FileInput(_Model):
+class FileInput(Model):
     """Files matched by a path template (with globs) for each window."""
 
     files: Text = Field(description="path template relative to the workspace, e.g. data/{start:%Y-%m-%d}/*.csv")
@@ -192,9 +91,9 @@ class FileInput(_Model):
     @model_validator(mode="after")
     def _format_known(self) -> FileInput:
         if self.format is None:
-            last = self.files.format(start=_SAMPLE_TIME, end=_SAMPLE_TIME).rsplit("/", 1)[-1]
+            last = self.files.format(start=SAMPLE_TIME, end=SAMPLE_TIME).rsplit("/", 1)[-1]
             if format_from_name(last) is None and not any(c in last for c in "*?["):
-                raise ValueError(f"cannot tell the format of {_short(self.files)!r} from its name; add "
+                raise ValueError(f"cannot tell the format of {short(self.files)!r} from its name; add "
                                  "format: csv, parquet or ndjson")
         return self
 
@@ -213,7 +112,7 @@ class FileInput(_Model):
         return value
 
 
-class JobInput(_Model):
+class JobInput(Model):
     """Another job's output: the producer windows overlapping this window."""
 
     job: Text = Field(description="name of the producing job")
@@ -235,7 +134,7 @@ class JobInput(_Model):
         return self
 
 
-class DatabaseInput(_Model):
+class DatabaseInput(Model):
     """A table or query through a SQLAlchemy URL, restricted to the window."""
 
     database: Text = Field(description="SQLAlchemy URL, e.g. sqlite:///state/app.sqlite")
@@ -284,14 +183,14 @@ Input = Annotated[
 ]
 
 
-class SqlStep(_Model):
+class SqlStep(Model):
     """A polars SQL query over the inputs, earlier named steps and `bounds`."""
 
     sql: Text
     name: Identifier | None = None
 
 
-class PythonStep(_Model):
+class PythonStep(Model):
     """`package.module:function`, called with the inputs as LazyFrames and `window`."""
 
     python: Annotated[Text, Field(pattern=r"^[A-Za-z_][\w.]*:[A-Za-z_]\w*$")]
@@ -314,12 +213,12 @@ Step = Annotated[
 ]
 
 
-class RowsCheck(_Model):
+class RowsCheck(Model):
     min: int | None = Field(default=None, ge=0)
     max: int | None = Field(default=None, ge=0)
 
 
-class ChangeCheck(_Model):
+class ChangeCheck(Model):
     """Compare with the previous window's output (rows, or the sum of a column)."""
 
     column: Identifier | None = None
@@ -336,7 +235,7 @@ class ChangeCheck(_Model):
         return self
 
 
-class OutputCheck(_Model):
+class OutputCheck(Model):
     """One check on a window's output; exactly one key per list item."""
 
     key: list[Identifier] | None = None
@@ -353,7 +252,7 @@ class OutputCheck(_Model):
         return self
 
 
-class Output(_Model):
+class Output(Model):
     """Where a window's result goes: a file path template or a database table."""
 
     path: Text | None = Field(default=None, description="file path template relative to the workspace")
@@ -393,7 +292,7 @@ class Output(_Model):
         return "csv" if (self.path or "").lower().endswith(".csv") else "parquet"
 
 
-class WindowDecl(_Model):
+class WindowDecl(Model):
     """How time is cut: a cadence, a timezone, a start, an optional end, a settle time."""
 
     every: Text | None = Field(default=None, description="N and a unit: m, h, d, w, mo, y (e.g. 15m, 1h, 1d, 1mo)")
@@ -466,7 +365,7 @@ class WindowDecl(_Model):
         return self
 
 
-class JobSpec(_Model):
+class JobSpec(Model):
     """A job file: inputs, a window cadence, steps and one output."""
 
     description: Text | None = None
@@ -514,93 +413,6 @@ class JobSpec(_Model):
         return self
 
 
-SETTINGS_FILE = "_settings.yaml"  # in jobs/: settings for every job of a workspace
-DEFAULT_TIME_ALLOWED = timedelta(hours=1)
-DEFAULT_LEASE = timedelta(minutes=2)
-MIN_LEASE = timedelta(seconds=2)
-
-
-class WorkspaceSettings(_Model):
-    """`jobs/_settings.yaml`: settings that hold for every job of the workspace."""
-
-    time_allowed: Duration = Field(
-        default=DEFAULT_TIME_ALLOWED,
-        description="how long one attempt at a window may run before weir stops it and records it failed; "
-                    "a job's own time_allowed: wins")
-    lease: Duration = Field(
-        default=DEFAULT_LEASE,
-        description="how long a runner's claim on a window (and the tick lock) lasts without renewal; "
-                    "renewed every third of it while the runner lives")
-
-    @field_validator("time_allowed")
-    @classmethod
-    def _positive_time(cls, value: timedelta) -> timedelta:
-        if value <= timedelta(0):
-            raise ValueError("time_allowed must be positive")
-        return value
-
-    @field_validator("lease")
-    @classmethod
-    def _long_enough(cls, value: timedelta) -> timedelta:
-        if value < MIN_LEASE:
-            raise ValueError(f"lease must be at least {int(MIN_LEASE.total_seconds())}s")
-        return value
-
-
-_TEMPLATE_FIELDS = {"start", "end"}
-NAME_MAX = 255
-"""Longest file or folder name in bytes (POSIX NAME_MAX on Linux and common file systems)."""
-PATH_MAX = 4096
-"""Longest path in bytes that Linux opens (PATH_MAX)."""
-_SAMPLE_TIME = datetime(2026, 12, 31, 23, 59, 59)  # a sample instant: two-digit fields at their widest
-
-
-def check_template(template: str) -> None:
-    """Raise ValueError unless `template` only uses {start:...} and {end:...} and can name a file."""
-    import string
-
-    try:
-        parsed = list(string.Formatter().parse(template))
-    except ValueError as exc:
-        raise ValueError(f"bad path template {_short(template)!r}: {exc}") from None
-    for _, field_name, spec, conversion in parsed:
-        if field_name is None:
-            continue
-        if field_name not in _TEMPLATE_FIELDS:
-            raise ValueError(
-                f"unknown placeholder {{{_short(field_name)}}} in {_short(template)!r}: "
-                "use {start:%Y-%m-%d} or {end:...}"
-            )
-        if conversion or (spec and "%" not in spec):
-            raise ValueError(f"placeholder {{{field_name}:{_short(spec or '')}}} needs a strftime format "
-                             "like %Y-%m-%d")
-    sample = template.format(start=_SAMPLE_TIME, end=_SAMPLE_TIME)
-    for name in sample.split("/"):
-        if len(name.encode("utf-8", "surrogatepass")) > NAME_MAX:
-            raise ValueError(f"a file or folder name of {len(name.encode('utf-8', 'surrogatepass')):,} bytes "
-                             f"({_short(name)!r}) cannot exist: names are at most {NAME_MAX} bytes")
-    if len(sample.encode("utf-8", "surrogatepass")) > PATH_MAX:
-        raise ValueError(f"a path of {len(sample.encode('utf-8', 'surrogatepass')):,} bytes cannot be opened: "
-                         f"paths are at most {PATH_MAX} bytes")
-
-
-FORMAT_SUFFIXES = ((".parquet", "parquet"), (".pq", "parquet"), (".ndjson", "ndjson"), (".jsonl", "ndjson"),
-                   (".json", "ndjson"), (".csv", "csv"), (".csv.gz", "csv"))
-
-
-def format_from_name(path: str) -> str | None:
-    """The input format a file name implies (csv, parquet, ndjson), or None."""
-    lower = path.lower()
-    for suffix, fmt in FORMAT_SUFFIXES:
-        if lower.endswith(suffix):
-            return fmt
-    return None
-
-
-def _short(text: str, limit: int = 60) -> str:
-    return text if len(text) <= limit else f"{text[:limit]}..."
-
-
 # ---------------------------------------------------------------- loading
 
 
@@ -622,227 +434,3 @@ class Job:
         return Problem(str(self.file), line, col, display or dotted(path), message, severity)
 
 
-_JOB_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
-
-MAX_FILE_BYTES = 256 * 1024
-"""The longest job file weir reads (a real one is a few KiB); see yamlfile for the other limits."""
-
-
-def _position(raw: bytes, offset: int) -> tuple[int, int]:
-    """1-based line and column (in characters) of byte `offset` of UTF-8 `raw`."""
-    start = raw.rfind(b"\n", 0, offset) + 1
-    return raw.count(b"\n", 0, offset) + 1, len(raw[start:offset].decode("utf-8", errors="replace")) + 1
-
-
-def dotted(path: tuple[str | int, ...]) -> str:
-    return ".".join(str(p) for p in path)
-
-
-def _read_marked(file: Path, shown: str) -> Marked:
-    """The YAML of `file` with its source marks; SpecProblems when it cannot be read or parsed."""
-    try:
-        with open(file, "rb") as handle:
-            raw = handle.read(MAX_FILE_BYTES + 1)
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        line, col = _position(raw, exc.start)
-        raise SpecProblems([Problem(shown, line, col, "", f"cannot read {_kind(file)}: not UTF-8 text ({exc.reason})")]) from None
-    except OSError as exc:
-        raise SpecProblems([Problem(shown, 1, 1, "", f"cannot read {_kind(file)}: {exc}")]) from None
-    if len(raw) > MAX_FILE_BYTES:
-        line, col = _position(raw, MAX_FILE_BYTES)
-        raise SpecProblems([Problem(shown, line, col, "", (
-            f"{_kind(file)} longer than {MAX_FILE_BYTES // 1024} KiB, a limit of weir job files; "
-            "split the job or move long SQL into a python step"))])
-    try:
-        return load_marked(text)
-    except YamlLimit as exc:
-        mark = exc.problem_mark
-        line, col = (mark.line + 1, mark.column + 1) if mark else (1, 1)
-        raise SpecProblems([Problem(shown, line, col, "", f"{exc.problem}, a limit of weir job files")]) from None
-    except yaml.MarkedYAMLError as exc:
-        mark = exc.problem_mark or exc.context_mark
-        line, col = (mark.line + 1, mark.column + 1) if mark else (1, 1)
-        message = " ".join(str(p) for p in (exc.context, exc.problem) if p)
-        raise SpecProblems([Problem(shown, line, col, "", f"malformed YAML: {message}")]) from None
-    except yaml.YAMLError as exc:
-        raise SpecProblems([Problem(shown, 1, 1, "", f"malformed YAML: {exc}")]) from None
-
-
-def _kind(file: Path) -> str:
-    return "workspace settings file" if file.name == SETTINGS_FILE else "job file"
-
-
-def load_job(file: Path, display: str | None = None) -> Job:
-    """Load and validate one job file; raise SpecProblems with every problem found."""
-    shown = display or str(file)
-    marked = _read_marked(file, shown)
-    problems: list[Problem] = []
-    name = file.stem
-    if name.startswith("_"):
-        problems.append(Problem(shown, 1, 1, "", (
-            f"job name {name!r} (the file name) starts with _, which is kept for workspace files "
-            f"such as jobs/{SETTINGS_FILE}; rename the file")))
-    elif not _JOB_NAME.match(name):
-        problems.append(Problem(shown, 1, 1, "", f"job name {name!r} (the file name) must be letters, digits and _"))
-    for path, (line, col) in marked.duplicates:
-        problems.append(Problem(shown, line, col, dotted(path), "key given twice; the last one would win silently"))
-    if not isinstance(marked.data, dict):
-        problems.append(Problem(shown, 1, 1, "", "a job file is a YAML mapping with window:, steps: and output:"))
-        raise SpecProblems(problems)
-    try:
-        spec = JobSpec.model_validate(marked.data)
-    except ValidationError as exc:
-        problems.extend(_problems_from(exc, marked, shown))
-        raise SpecProblems(problems) from None
-    if problems:
-        raise SpecProblems(problems)
-    return Job(name=name, spec=spec, file=Path(shown), marks=marked)
-
-
-def load_settings(file: Path, display: str | None = None) -> WorkspaceSettings:
-    """Load and validate `jobs/_settings.yaml` (defaults when it does not exist); SpecProblems when invalid."""
-    if not file.exists():
-        return WorkspaceSettings()
-    shown = display or str(file)
-    marked = _read_marked(file, shown)
-    problems = [Problem(shown, line, col, dotted(path), "key given twice; the last one would win silently")
-                for path, (line, col) in marked.duplicates]
-    data = {} if marked.data is None else marked.data
-    if not isinstance(data, dict):
-        raise SpecProblems([*problems, Problem(shown, 1, 1, "", "workspace settings are a YAML mapping")])
-    try:
-        settings = WorkspaceSettings.model_validate(data)
-    except ValidationError as exc:
-        raise SpecProblems([*problems, *_problems_from(exc, marked, shown, WorkspaceSettings)]) from None
-    if problems:
-        raise SpecProblems(problems)
-    return settings
-
-
-def _problems_from(exc: ValidationError, marked: Marked, shown: str,
-                   model: type[BaseModel] | None = None) -> list[Problem]:
-    out: list[Problem] = []
-    seen: set[tuple[Any, ...]] = set()
-    for error in exc.errors(include_url=False):
-        loc = _data_path(error["loc"], marked.data)
-        kind = error["type"]
-        message = error["msg"]
-        if message.startswith("Value error, "):
-            message = message[len("Value error, "):]
-        if message.startswith("Assertion failed, "):
-            message = message[len("Assertion failed, "):]
-        at_key = False
-        if kind == "extra_forbidden":
-            at_key = True
-            field_name = str(loc[-1])
-            allowed = _allowed_keys(error["loc"][:-1], model or JobSpec)
-            close = difflib.get_close_matches(field_name, sorted(allowed), n=1, cutoff=0.6)
-            hint = f" (did you mean {close[0]!r}?)" if close else (
-                f" (allowed: {', '.join(sorted(allowed))})" if allowed else ""
-            )
-            message = f"unknown key {field_name!r}{hint}"
-        elif kind == "missing":
-            message = f"required key {str(loc[-1])!r} is missing"
-            loc = loc[:-1] if loc else loc
-        elif kind in ("literal_error", "enum"):
-            message = f"{message}; got {error.get('input')!r}"
-        line, col = marked.where(tuple(loc), key=at_key)
-        shown_path = dotted(tuple(_data_path(error["loc"], marked.data, keep_missing=True)))
-        key = (line, col, shown_path, message)
-        if key in seen:
-            continue
-        seen.add(key)
-        out.append(Problem(shown, line, col, shown_path, message))
-    return out
-
-
-_TAGS = {"file input", "job input", "database input", "sql step", "python step",
-         "function-after[_known_type(), str]"}
-
-
-def _data_path(loc: tuple[Any, ...], data: Any, keep_missing: bool = False) -> list[Any]:
-    """Map a pydantic error location onto the YAML data, dropping union tags."""
-    path: list[Any] = []
-    node = data
-    for part in loc:
-        if isinstance(node, dict) and part in node:
-            path.append(part)
-            node = node[part]
-        elif isinstance(node, dict) and part == "columns" and "schema" in node:
-            path.append("schema")
-            node = node["schema"]
-        elif isinstance(node, list) and isinstance(part, int) and 0 <= part < len(node):
-            path.append(part)
-            node = node[part]
-        elif isinstance(part, str) and (part in _TAGS or part.startswith("function-")):
-            continue
-        elif keep_missing or isinstance(node, dict):
-            path.append("schema" if part == "columns" else part)
-            node = None
-        else:
-            continue
-    return path
-
-
-def _allowed_keys(loc: tuple[Any, ...], top: type[BaseModel]) -> set[str]:
-    """The keys allowed at a pydantic location (for 'did you mean')."""
-    model: Any = top
-    for part in loc:
-        model = _child_type(model, part)
-        if model is None:
-            return set()
-    if isinstance(model, type) and issubclass(model, BaseModel):
-        names = set()
-        for fname, finfo in model.model_fields.items():
-            names.add(finfo.alias or fname)
-        return names
-    return set()
-
-
-_TAG_MODELS = {
-    "file input": FileInput, "job input": JobInput, "database input": DatabaseInput,
-    "sql step": SqlStep, "python step": PythonStep,
-}
-
-
-def _unwrap(tp: Any) -> Any:
-    while True:
-        origin = typing.get_origin(tp)
-        if origin is Annotated:
-            tp = typing.get_args(tp)[0]
-            continue
-        if origin in (Union, types.UnionType):
-            args = [a for a in typing.get_args(tp) if a is not type(None)]
-            if len(args) == 1:
-                tp = args[0]
-                continue
-            return tp
-        return tp
-
-
-def _child_type(model: Any, part: Any) -> Any:
-    model = _unwrap(model)
-    if isinstance(part, str) and part in _TAG_MODELS:
-        return _TAG_MODELS[part]
-    origin = typing.get_origin(model)
-    if origin in (Union, types.UnionType):
-        return model  # wait for the tag
-    if origin is dict:
-        return typing.get_args(model)[1]
-    if origin is list:
-        return typing.get_args(model)[0]
-    if isinstance(model, type) and issubclass(model, BaseModel):
-        for fname, finfo in model.model_fields.items():
-            if part in (fname, finfo.alias):
-                return finfo.annotation
-        return None
-    return None
-
-
-def job_schema() -> dict[str, Any]:
-    """JSON Schema (draft 2020-12) of a job file, generated from the models."""
-    schema = JobSpec.model_json_schema(by_alias=True, mode="validation")
-    schema["$schema"] = "https://json-schema.org/draft/2020-12/schema"
-    schema["title"] = "weir job file"
-    return schema

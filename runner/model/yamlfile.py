@@ -263,3 +263,7 @@ def source_text(value: Any) -> Any:
     if isinstance(value, int | float):
         return str(value)
     return value
+
+
+def dotted(path: tuple[str | int, ...]) -> str:
+    return ".".join(str(p) for p in path)

@@ -1,0 +1,43 @@
+"""The house rules that tools check: import layers without cycles (import-linter), types (mypy),
+and module size.
+
+The layers and the acyclic contract are declared in pyproject.toml
+([tool.importlinter]) and explained in DEVELOPERS.md; mypy's settings are
+there too ([tool.mypy]).
+"""
+
+from __future__ import annotations
+
+import ast
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+MOST_LINES = 500  # past this a module says in its docstring why it is one module
+
+
+def _tool(name: str) -> str:
+    found = shutil.which(name, path=str(Path(sys.executable).parent))
+    assert found, f"{name} is not installed: pip install -e '.[test]'"
+    return found
+
+
+def test_imports_keep_the_layers_and_have_no_cycle():
+    proc = subprocess.run([_tool("lint-imports"), "--no-cache"], cwd=ROOT, capture_output=True, text=True,
+                          timeout=600)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert "0 broken" in proc.stdout
+
+
+def test_every_module_past_500_lines_says_why_in_its_docstring():
+    long = []
+    for path in sorted((ROOT / "runner").rglob("*.py")):
+        text = path.read_text()
+        if text.count("\n") <= MOST_LINES:
+            continue
+        doc = ast.get_docstring(ast.parse(text)) or ""
+        if "One module because" not in doc:
+            long.append(f"{path.relative_to(ROOT)} ({text.count(chr(10))} lines)")
+    assert long == []
