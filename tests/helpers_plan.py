@@ -8,7 +8,7 @@ test_verify.py and test_plan_bad_input.py; not a pytest conftest.
   `wkey` its ledger key (UTC start).
 * Small job files of the invented bike-share and `land_hour`, which writes
   one hour of rides as a small CSV file (optionally with a chosen mtime).
-* `gated_tick`: exactly what `weir tick` does (runner/cli.py `tick`): ask the
+* `gated_tick`: exactly what `weir tick` does (runner/cli/running.py `tick`): ask the
   idle-tick gate first, and tick in full only when it says so.
 * `example_workspace`: a copy of the repository's example jobs over three
   days of the demo's landing data, backfilled once per test session.
@@ -225,7 +225,7 @@ def checkpoint(root: Path) -> None:
 
 
 def gated_tick(root: Path, at: datetime, ws: Any = None) -> Any:
-    """What `weir tick --at AT` does: the gate first (runner/cli.py), a full tick only when it says so.
+    """What `weir tick --at AT` does: the gate first (runner/cli/running.py), a full tick only when it says so.
 
     Returns None when the gate held (an idle tick that stopped early), else api.tick's TickResult.
     """

@@ -3,7 +3,7 @@
 The clock is injected (`--at`, `at=`). Expected instants are computed here with
 zoneinfo (the IANA tz database) and plain datetime arithmetic; what ran is
 read from the ledger with Python's sqlite3. The simulated day calls the
-library in this process, the way `weir tick` does (runner/cli.py: the idle
+library in this process, the way `weir tick` does (runner/cli/running.py: the idle
 gate first, `runner.api.tick` when it says so). The only waits are bounded
 ones for a `weir serve` subprocess to start working and to stop.
 """

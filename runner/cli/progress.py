@@ -1,0 +1,52 @@
+"""Progress while windows run: a bar on a terminal, one line per window otherwise."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import click
+
+from runner.cli.render import outcome_line
+
+
+class Progress:
+    """A rich progress bar on a terminal; one plain line per window otherwise."""
+
+    def __init__(self, tty: bool, quiet: bool = False):
+        self.tty, self.quiet = tty, quiet
+        self.counts = {"done": 0, "failed": 0, "skipped": 0, "waiting": 0}
+        self.bar = None
+        self.task = None
+
+    def start(self, total: int) -> None:
+        if self.quiet or not self.tty:
+            return
+        from rich.progress import (
+            BarColumn,
+            MofNCompleteColumn,
+            Progress,
+            TextColumn,
+            TimeRemainingColumn,
+        )
+
+        self.bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                            TextColumn("{task.fields[counts]}"), TimeRemainingColumn(), transient=False)
+        self.bar.start()
+        self.task = self.bar.add_task("windows", total=total, counts="")
+
+    def update(self, task: Any, outcome: Any) -> None:
+        key = outcome.status if outcome.status in self.counts else "waiting"
+        self.counts[key] += 1
+        if self.quiet:
+            return
+        if self.bar is not None:
+            text = "  ".join(f"{k} {v}" for k, v in self.counts.items() if v)
+            self.bar.update(self.task, advance=1, counts=text)
+            if outcome.status == "failed":
+                self.bar.console.print(f"[bold]failed[/] {outcome.job} {outcome.window}: {outcome.reason}")
+        elif outcome.status != "skipped":
+            click.echo(outcome_line(outcome))
+
+    def stop(self) -> None:
+        if self.bar is not None:
+            self.bar.stop()
