@@ -225,16 +225,17 @@ def checkpoint(root: Path) -> None:
 
 
 def gated_tick(root: Path, at: datetime, ws: Any = None) -> Any:
-    """What `weir tick --at AT` does: the gate first (runner/cli/running.py), a full tick only when it says so.
+    """What `weir tick --at AT` does: the gate first (`api.tick`), a full tick only when it says so;
+    with `ws` the tick reuses that loaded workspace.
 
     Returns None when the gate held (an idle tick that stopped early), else api.tick's TickResult.
     """
     from runner import api
     from runner.engine import gate
 
-    if gate.fresh(root.resolve(), at, None) is not False:
+    if gate.fresh(root.resolve(), at, None) is not None:
         return None
-    return api.tick(root, at, ws=ws, workers=1)
+    return api.tick(root, at=at, ws=ws, workers=1)
 
 
 def use_modules_of(root: Path, prefix: str) -> None:

@@ -28,8 +28,7 @@ def demo_ws(tmp_path_factory) -> Path:
     """A copy of the repository's example jobs with the demo run in it (once for this module)."""
     root = tmp_path_factory.mktemp("demo")
     shutil.copytree(ROOT / "jobs", root / "jobs")
-    summary, result, _ = api.demo(root, NOW, workers=1)
-    assert result.failed == 0
+    assert api.demo(root, now=NOW, workers=1).backfill.failed == 0
     return root
 
 
@@ -93,7 +92,8 @@ def test_demo_covers_the_spring_forward_day_with_23_hourly_windows(demo_ws: Path
 def test_a_second_demo_run_does_nothing(demo_ws: Path):
     before = {p: p.stat().st_mtime_ns for p in (demo_ws / "state").rglob("*") if p.is_file()
               and "ledger.sqlite" not in p.name}
-    summary, result, _ = api.demo(demo_ws, NOW, workers=1)
+    done = api.demo(demo_ws, now=NOW, workers=1)
+    summary, result = done.landing, done.backfill
     assert summary.written == 0
     assert {o.status for o in result.outcomes} == {"skipped"}
     after = {p: p.stat().st_mtime_ns for p in (demo_ws / "state").rglob("*") if p.is_file()
@@ -112,9 +112,9 @@ def test_late_windows_are_those_whose_files_arrived_over_an_hour_after_the_windo
         if mtime - (start + timedelta(hours=1)) > timedelta(hours=1):
             late.add(start.strftime("%Y-%m-%dT%H:%M:%SZ"))
     assert late
-    plan = api.plan(demo_ws, ["rides_hourly"], NOW)
-    assert plan[0]["late"] == len(late)
-    history = api.history(demo_ws, "rides_hourly")
+    plan = api.plan(demo_ws, jobs=["rides_hourly"], at=NOW)
+    assert plan[0].late == len(late)
+    history = api.history(demo_ws, job="rides_hourly")
     flagged = {r["window_key"] for r in history if r["late"]}
     assert flagged == late
 
@@ -168,7 +168,7 @@ def test_advise_reports_medians_and_percentiles_of_the_recorded_runs(demo_ws: Pa
     con = sqlite3.connect(demo_ws / "state" / "ledger.sqlite")
     rows = con.execute("SELECT seconds, step_seconds, rows_written FROM weir_runs "
                        "WHERE job = 'rides_hourly' AND status = 'done'").fetchall()
-    advice = {a["job"]: a for a in api.advise(demo_ws, [])}["rides_hourly"]
+    advice = {a.job: a.as_dict() for a in api.advise(demo_ws, jobs=[])}["rides_hourly"]
     # Python's statistics module as the reference for the median
     assert advice["runs"] == len(rows)
     assert advice["seconds_median"] == pytest.approx(statistics.median(r[0] for r in rows))
@@ -185,13 +185,13 @@ def test_readme_change_makes_exactly_the_daily_job_and_its_readers_stale(demo_ws
     text = job.read_text()
     assert "SUM(revenue) AS revenue" in text
     job.write_text(text.replace("SUM(revenue) AS revenue", "ROUND(SUM(revenue), 0) AS revenue"))
-    stale = api.stale(root, [], NOW)
+    stale = api.stale(root, jobs=[], at=NOW).as_dict()
     jobs = {w["job"] for w in stale["windows"]}
     assert jobs == {"rides_daily", "rides_rolling_7d", "rides_monthly"}
     assert {tuple(w["reasons"]) for w in stale["windows"] if w["job"] == "rides_daily"} == {("code",)}
-    result = api.backfill(root, ["rides_daily"], None, None, NOW, downstream=True, workers=1)
+    result = api.backfill(root, jobs=["rides_daily"], at=NOW, downstream=True, workers=1)
     assert result.failed == 0
-    assert api.stale(root, [], NOW)["windows"] == []
+    assert api.stale(root, jobs=[], at=NOW).windows == []
 
 
 
@@ -203,7 +203,8 @@ def test_the_daily_change_check_keeps_the_last_good_output_when_a_day_arrives_ha
     for hour in range(7, 20):  # a partial delivery: the busy hours of 2026-03-31 keep only their header
         path = root / "state" / "landing" / "rides" / "2026-03-31" / f"{hour:02d}-main.csv"
         path.write_text(path.read_text().splitlines()[0] + "\n")
-    result = api.backfill(root, ["rides_hourly"], "2026-03-31", "2026-04-01", NOW, downstream=True, workers=1)
+    result = api.backfill(root, jobs=["rides_hourly"], lo="2026-03-31", hi="2026-04-01", at=NOW, downstream=True,
+                          workers=1)
     failed = [o for o in result.outcomes if o.status == "failed"]
     assert [(o.job, o.window) for o in failed] == [("rides_daily", "2026-03-31T00:00+01:00")]
     assert "check change of rides failed" in failed[0].reason
@@ -213,6 +214,7 @@ def test_the_daily_change_check_keeps_the_last_good_output_when_a_day_arrives_ha
                         (root / "state" / "warehouse" / "rides_hourly" / "2026-03-31").glob("*.parquet")])
     before = pl.read_parquet(root / "state" / "warehouse" / "rides_daily" / "2026-03-30.parquet")["rides"].sum()
     assert hourly["rides"].sum() < 0.4 * before
-    summary, result, _ = api.demo(root, NOW, workers=1)  # the missing data arrives
+    done = api.demo(root, now=NOW, workers=1)
+    summary, result = done.landing, done.backfill  # the missing data arrives
     assert summary.written == 13 and result.failed == 0
-    assert api.stale(root, [], NOW)["windows"] == []
+    assert api.stale(root, jobs=[], at=NOW).windows == []

@@ -77,8 +77,7 @@ def record(root: Path) -> dict[str, Any]:
     from runner import api
 
     shutil.copytree(ROOT / "jobs", root / "jobs")
-    _, result, _ = api.demo(root, NOW, workers=1)
-    assert result.failed == 0
+    assert api.demo(root, now=NOW, workers=1).backfill.failed == 0
     shapes: dict[str, Any] = {}
     for name, args, status in COMMANDS:
         if name == "edit":

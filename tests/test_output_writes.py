@@ -60,13 +60,13 @@ def test_an_output_folder_swapped_for_a_link_outside_is_refused_by_a_long_lived_
     write_rides(root, DAY)
     outside = tmp_path / "outside"
     outside.mkdir()
-    assert api.run(root, "rides_hourly", "2026-03-28T05:00").status == "done"  # one process from here on
+    assert api.run(root, job="rides_hourly", window="2026-03-28T05:00").status == "done"  # one process from here on
     folder = root / "state" / "warehouse" / "rides"
     assert [p.name for p in folder.iterdir()] == ["2026-03-28T05.parquet"]
     folder.rename(root / "state" / "warehouse" / "rides.moved")
     folder.symlink_to(outside, target_is_directory=True)
 
-    outcome = api.run(root, "rides_hourly", "2026-03-28T06:00")
+    outcome = api.run(root, job="rides_hourly", window="2026-03-28T06:00")
     assert outcome.status == "failed" and "leaves the workspace" in (outcome.error or ""), outcome
     assert files_under(outside) == []  # nothing written there, not even a temporary file
 

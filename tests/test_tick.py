@@ -164,7 +164,7 @@ def test_a_second_tick_exits_at_once_with_status_0_while_another_holds_the_works
             out, err = proc.communicate(timeout=120)
             assert proc.returncode == 0, err
             assert "another tick is running" in out and "another-host:4242:1" in out
-            inproc = api.tick(root, start + timedelta(hours=3))
+            inproc = api.tick(root, at=start + timedelta(hours=3))
             assert not inproc.ran and inproc.holder == "another-host:4242:1" and inproc.outcomes == []
             assert query(root, "SELECT COUNT(*) FROM weir_runs") == [(0,)]
     finally:
@@ -334,21 +334,21 @@ WHILE_PLANNING = {
 
 @pytest.mark.parametrize("change", list(WHILE_PLANNING))
 def test_a_change_while_an_idle_tick_plans_is_not_absorbed_by_the_gate(gated_ws, monkeypatch, change):
-    from runner import api
+    from runner.engine import survey as surveying
 
     root, module = gated_ws
     (root / "state" / "tick-gate.json").unlink()
     act, expected = WHILE_PLANNING[change]
-    real = api._survey
+    real = surveying.survey
 
     def survey_then_change(*args, **kwargs):
         out = real(*args, **kwargs)
         act(root)  # after the plan was made, before the tick ends
         return out
 
-    monkeypatch.setattr(api, "_survey", survey_then_change)
+    monkeypatch.setattr(surveying, "survey", survey_then_change)
     assert _answer(root, IDLE_AT + timedelta(minutes=1), module)[0] == set()
-    monkeypatch.setattr(api, "_survey", real)
+    monkeypatch.setattr(surveying, "survey", real)
     answer, held = _answer(root, IDLE_AT + timedelta(minutes=2), module)
     assert not held
     assert {(j, w) for j, w, s in answer if s == "done"} == expected
@@ -445,18 +445,78 @@ def test_serve_stops_cleanly_on_sigterm_between_windows_leaving_no_claims(tmp_pa
     assert rest["counts"] == {"done": 6 - done}
 
 
-def test_serve_logs_one_line_per_tick(tmp_path):
-    root = write_jobs(tmp_path / "ws", {"rides_hourly": hourly_job("2026-03-28T00:00", "2026-03-28T01:00")})
-    land_hour(root, T0)
-    code, out, err = serve_until(root, lambda out: len(out) >= 3)
-    assert code == 0, err
-    ticks = out[:-1]
-    assert out[-1].endswith("stopped") and len(ticks) >= 3
-    # each tick line: a UTC stamp, then what the tick did; the first ran the one due window
-    stamps = [datetime.strptime(line.split()[0], "%Y-%m-%dT%H:%M:%SZ") for line in ticks]
-    assert stamps == sorted(stamps)
-    assert all(" tick: " in line for line in ticks)
-    assert "done 1" in ticks[0] and all("nothing due" in line for line in ticks[1:])
+class FakeTime:
+    """An injected clock, monotonic timer and sleep: sleeping advances both, instantly."""
+
+    def __init__(self, start: datetime):
+        self.now, self.mono, self.slept = start, 0.0, 0.0
+
+    def clock(self) -> datetime:
+        return self.now
+
+    def monotonic(self) -> float:
+        return self.mono
+
+    def sleep(self, seconds: float) -> None:
+        self.slept += seconds
+        self.mono += seconds
+        self.now += timedelta(seconds=seconds)
+
+
+def test_serve_ticks_once_per_interval_by_the_injected_clock_without_waiting(tmp_path):
+    from runner import api
+
+    root = write_jobs(tmp_path / "ws", {"rides_hourly": hourly_job("2026-03-28T00:00", "2026-03-28T03:00")})
+    for s in hours(T0, 3):
+        land_hour(root, s)
+    fake = FakeTime(T0 + HOUR + SETTLE)  # the first window is due, the others not yet
+    ticks: list[tuple[datetime, dict[str, int]]] = []
+    errors: list[tuple[str, datetime | None]] = []
+    api.serve(root, interval=3600, should_stop=lambda: len(ticks) >= 3, workers=1,
+              on_tick=lambda result, now: ticks.append((now, result.counts())),
+              on_error=lambda message, at: errors.append((message, at)),
+              clock=fake.clock, monotonic=fake.monotonic, sleep=fake.sleep)
+    assert errors == []
+    # one tick an hour apart by the injected clock; each runs the window that became due since the last
+    assert [now for now, _ in ticks] == [T0 + HOUR + SETTLE + n * HOUR for n in range(3)]
+    assert [counts for _, counts in ticks] == [{"done": 1}, {"done": 1}, {"done": 1}]
+    assert fake.slept == 2 * 3600  # waited between ticks (in half-second steps), never after the last
+    assert done_runs(root, "rides_hourly") == {wkey(s): 1 for s in hours(T0, 3)}
+
+
+def test_serve_logs_a_failed_tick_and_goes_on_with_the_jobs_it_had_when_the_files_turn_invalid(tmp_path,
+                                                                                                 monkeypatch):
+    from runner import api
+    from runner.engine import pulse
+
+    root = write_jobs(tmp_path / "ws", {"rides_hourly": hourly_job("2026-03-28T00:00", "2026-03-28T03:00")})
+    for s in hours(T0, 3):
+        land_hour(root, s)
+    fake = FakeTime(T0 + HOUR + SETTLE)
+    ticks: list[dict[str, int]] = []
+    errors: list[tuple[str, datetime | None]] = []
+    real_tick, calls = pulse.tick, []
+
+    def tick_failing_once(*args, **kwargs):
+        calls.append(args[1])
+        if len(calls) == 2:
+            raise OSError("the disk went away")
+        return real_tick(*args, **kwargs)
+
+    def on_tick(result, now):
+        ticks.append(result.counts())
+        (root / "jobs" / "rides_hourly.yaml").write_text("window: [")  # broken from now on
+
+    monkeypatch.setattr(pulse, "tick", tick_failing_once)
+    api.serve(root, interval=3600, should_stop=lambda: len(ticks) >= 2, workers=1, on_tick=on_tick,
+              on_error=lambda message, at: errors.append((message, at)),
+              clock=fake.clock, monotonic=fake.monotonic, sleep=fake.sleep)
+    assert calls == [T0 + HOUR + SETTLE + n * HOUR for n in range(3)]
+    assert errors[0][0].startswith("job files invalid, keeping the previous ones: ") and errors[0][1] is None
+    assert errors[1] == ("tick failed: the disk went away", T0 + 2 * HOUR + SETTLE)
+    assert errors[2][0].startswith("job files invalid") and len(errors) == 3  # none after the last tick
+    # the third tick ran the two windows due by then, with the jobs loaded before the file broke
+    assert ticks == [{"done": 1}, {"done": 2}]
 
 
 @pytest.mark.parametrize("every", ["0s", "soon"])
@@ -466,3 +526,32 @@ def test_serve_refuses_a_bad_interval(tmp_path, every):
     assert result.exit_code == 2 and "--every" in result.stderr
     assert not ledger_file(root).exists()
 
+
+# ---------------------------------------------------------------- the ledger's place
+
+
+@pytest.mark.parametrize("given", ["--ledger", "WEIR_LEDGER"])
+def test_a_relative_sqlite_ledger_path_is_relative_to_the_workspace_not_the_current_folder(
+        tmp_path, monkeypatch, given):
+    """House issue item 2 (one SQLite URL rule): `weir -C WS --ledger sqlite:///state/l2.sqlite` and
+    WEIR_LEDGER put the ledger in WS/state/, as `database:` in job files is read; it used to land
+    under the current folder."""
+    root = write_jobs(tmp_path / "ws", {"rides_hourly": hourly_job("2026-03-28T00:00", "2026-03-28T01:00")})
+    land_hour(root, T0)
+    elsewhere = tmp_path / "elsewhere"
+    (elsewhere / "state").mkdir(parents=True)
+    monkeypatch.chdir(elsewhere)
+    url = "sqlite:///state/l2.sqlite"
+    args = ("--ledger", url) if given == "--ledger" else ()
+    if given == "WEIR_LEDGER":
+        monkeypatch.setenv("WEIR_LEDGER", url)
+    result = cli(root, *args, "tick", "--at", at_text(T0 + 2 * HOUR), "--json")
+    assert result.exit_code == 0, result.stderr
+    assert json.loads(result.stdout)["counts"] == {"done": 1}
+    assert not (elsewhere / "state" / "l2.sqlite").exists()
+    conn = sqlite3.connect(root / "state" / "l2.sqlite")  # the standard library's sqlite3
+    try:
+        assert conn.execute("SELECT COUNT(*) FROM weir_runs WHERE status = 'done'").fetchone() == (1,)
+    finally:
+        conn.close()
+    assert not (root / "state" / "ledger.sqlite").exists()

@@ -28,8 +28,8 @@ from runner.cli.options import Context
 @click.option("-C", "--workspace", "root", type=click.Path(file_okay=False, path_type=Path), default=".",
               show_default=True, help="The workspace folder (holds jobs/ and state/).")
 @click.option("--ledger", envvar="WEIR_LEDGER", metavar="URL",
-              help="Ledger database URL (SQLAlchemy). Default: sqlite:///state/ledger.sqlite in the workspace. "
-                   "Also WEIR_LEDGER.")
+              help="Ledger database URL (SQLAlchemy); a relative SQLite path is relative to the workspace. "
+                   "Default: sqlite:///state/ledger.sqlite in the workspace. Also WEIR_LEDGER.")
 @click.pass_context
 def cli(ctx: click.Context, root: Path, ledger: str | None) -> None:
     """weir runs batch jobs over time windows, so that re-runs replace instead of double,

@@ -21,7 +21,7 @@ def history(obj: Context, job: str, window_id: str | None, limit: int, as_json: 
     """List JOB's runs, newest first: status, times, rows, fingerprint, error."""
     from runner import api
 
-    rows = api.history(obj.root, job, window_id, obj.ledger, limit)
+    rows = api.history(obj.root, job=job, window=window_id, ledger=obj.ledger, limit=limit)
     if as_json:
         emit_json(rows)
         return
@@ -56,7 +56,7 @@ def verify(obj: Context, jobs: tuple[str, ...], as_json: bool) -> None:
     """
     from runner import api
 
-    problems = api.verify(obj.root, list(jobs), obj.ledger)
+    problems = api.verify(obj.root, jobs=list(jobs), ledger=obj.ledger)
     if as_json:
         emit_json(problems)
     else:
@@ -77,7 +77,8 @@ def advise(obj: Context, jobs: tuple[str, ...], as_json: bool) -> None:
     the share of time spent outside the steps, and what to change, with the numbers used."""
     from runner import api
 
-    rows = api.advise(obj.root, list(jobs), obj.ledger)
+    advice = api.advise(obj.root, jobs=list(jobs), ledger=obj.ledger)
+    rows = [a.as_dict() for a in advice]
     if as_json:
         emit_json(rows)
         return
@@ -112,9 +113,9 @@ def report(obj: Context, out: Path | None, metrics: Path | None, at: str | None,
     graph. The page fetches nothing. Each file is replaced atomically; nothing
     else is written and nothing is run.
     """
-    from runner import report as reporting
+    from runner import api
 
-    result = reporting.report(obj.root, clock(at), obj.ledger, out, metrics)
+    result = api.report(obj.root, at=clock(at), ledger=obj.ledger, out=out, metrics=metrics)
     if as_json:
         emit_json(result)
         exit_if_unplanned(result["unplanned"])

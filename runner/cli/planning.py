@@ -22,7 +22,8 @@ def plan(obj: Context, jobs: tuple[str, ...], at: str | None, as_json: bool) -> 
     """
     from runner import api
 
-    result = api.plan(obj.root, list(jobs), clock(at), obj.ledger)
+    plans = api.plan(obj.root, jobs=list(jobs), at=clock(at), ledger=obj.ledger)
+    result = [p.as_dict() for p in plans]
     if as_json:
         emit_json(result)
         exit_if_unplanned({p["job"]: p["error"] for p in result if "error" in p})
@@ -63,7 +64,7 @@ def stale(obj: Context, jobs: tuple[str, ...], at: str | None, as_json: bool) ->
     """
     from runner import api
 
-    result = api.stale(obj.root, list(jobs), clock(at), obj.ledger)
+    result = api.stale(obj.root, jobs=list(jobs), at=clock(at), ledger=obj.ledger).as_dict()
     if as_json:
         emit_json(result)
         exit_if_unplanned(result["unplanned"])
@@ -94,7 +95,7 @@ def why(obj: Context, job: str, window_id: str, at: str | None, as_json: bool) -
     """Explain one window: its state and, when stale, exactly what changed since it ran."""
     from runner import api
 
-    info = api.why(obj.root, job, window_id, clock(at), obj.ledger)
+    info = api.why(obj.root, job=job, window=window_id, at=clock(at), ledger=obj.ledger).as_dict()
     if as_json:
         emit_json(info)
         return
@@ -153,7 +154,7 @@ def impact(obj: Context, at: str | None, workers: int | None, as_json: bool) -> 
     """
     from runner import api
 
-    rows = api.impact(obj.root, clock(at), obj.ledger, workers)
+    rows = [r.as_dict() for r in api.impact(obj.root, at=clock(at), ledger=obj.ledger, workers=workers)]
     if as_json:
         emit_json(rows)
         exit_if_unplanned({r["job"]: r["error"] for r in rows if "error" in r})

@@ -82,7 +82,11 @@ def exit_if_unplanned(unplanned: dict[str, str]) -> None:
 
 
 def tick_line(result: Any, now: datetime) -> str:
-    stamp = now.strftime("%Y-%m-%dT%H:%M:%SZ")
+    from runner.model.timeutil import format_utc
+
+    stamp = format_utc(now)
+    if result.gated:
+        return f"{stamp} tick: nothing due" + (f" until {format_utc(result.idle_until)}" if result.idle_until else "")
     if not result.ran:
         return f"{stamp} another tick is running ({result.holder or 'unknown'}); nothing done"
     counts = result.counts()

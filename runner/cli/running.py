@@ -37,7 +37,7 @@ def run(obj: Context, job: str, window_id: str, force: bool, as_json: bool) -> N
     if force and not as_json:
         click.echo(f"--force: the output of {job} {window_id} will be replaced if it exists.", err=True)
     with stoppable():
-        outcome = api.run(obj.root, job, window_id, obj.ledger, force=force)
+        outcome = api.run(obj.root, job=job, window=window_id, ledger=obj.ledger, force=force)
     if as_json:
         emit_json(outcome.as_dict())
     else:
@@ -73,18 +73,16 @@ def backfill(obj: Context, jobs: tuple[str, ...], lo: str | None, hi: str | None
 
     now = clock(at)
     if dry_run:
-        ws = api.workspace(obj.root)
-        first = ws.job(jobs[0]).name
-        plan = api.plan_backfill(ws, list(jobs), api.parse_bound(ws, first, lo, "--from"),
-                                 api.parse_bound(ws, first, hi, "--to"), now, downstream)
-        rows = [{"job": t.job, "window": t.window.id, "reason": t.reason} for t in plan.tasks]
+        preview = api.preview_backfill(obj.root, jobs=list(jobs), lo=lo, hi=hi, at=now, downstream=downstream)
+        shown = preview.as_dict()
+        rows = shown["windows"]
         if as_json:
-            emit_json({"windows": rows, "not_due": plan.not_due})
+            emit_json(shown)
             return
         for r in rows:
             click.echo(f"{r['job']} {r['window']}  {r['reason']}")
         click.echo(f"{len(rows)} window(s) would be considered (current ones are skipped when run)")
-        for job, n in plan.not_due.items():
+        for job, n in preview.not_due.items():
             click.echo(f"{job}: {n} window(s) in range are not due yet")
         return
     tty = sys.stdout.isatty() and not as_json
@@ -103,13 +101,13 @@ def backfill(obj: Context, jobs: tuple[str, ...], lo: str | None, hi: str | None
 
     try:
         with stoppable():
-            result = api.backfill(obj.root, list(jobs), lo, hi, now, obj.ledger, downstream, workers, force,
-                                  on_outcome=progress.update, on_plan=on_plan)
+            result = api.backfill(obj.root, jobs=list(jobs), lo=lo, hi=hi, at=now, ledger=obj.ledger,
+                                  downstream=downstream, workers=workers, force=force, on_outcome=progress.update,
+                                  on_plan=on_plan)
     finally:
         progress.stop()
     if as_json:
-        emit_json({"windows": [o.as_dict() for o in result.outcomes], "counts": result.counts(),
-                    "not_due": result.not_due, "replaced": result.replaced})
+        emit_json(result.as_dict())
     else:
         backfill_summary(result)
     if result.failed:
@@ -128,32 +126,20 @@ def tick(obj: Context, at: str | None, workers: int | None, as_json: bool) -> No
     status 0, so `* * * * * cd WORKSPACE && weir tick` is safe even when a tick
     outlasts a minute. Exit status 1 when a window failed.
     """
-    from runner.engine import gate
-    now = clock(at)
-    held = gate.fresh(obj.root.resolve(), now, obj.ledger)
-    if held is not False:
-        until = f" until {held.strftime('%Y-%m-%dT%H:%M:%SZ')}" if held else ""
-        if as_json:
-            emit_json({"ran": True, "holder": None, "counts": {}, "windows": [], "remaining": {},
-                        "waiting": {}, "idle_until": held.isoformat() if held else None})
-        else:
-            click.echo(f"{now.strftime('%Y-%m-%dT%H:%M:%SZ')} tick: nothing due{until}")
-        return
     from runner import api
 
+    now = clock(at)
     with stoppable():
-        result = api.tick(obj.root, now, obj.ledger, workers)
+        result = api.tick(obj.root, at=now, ledger=obj.ledger, workers=workers)
     if as_json:
-        emit_json({"ran": result.ran, "holder": result.holder, "counts": result.counts(),
-                    "windows": [o.as_dict() for o in result.outcomes], "remaining": result.held_back,
-                    "waiting": result.waiting, "unplanned": result.unplanned})
+        emit_json(result.as_dict())
     else:
-        click.echo(tick_line(result, clock(at)))
+        click.echo(tick_line(result, now))
         for o in result.outcomes:
             if o.status in ("done", "failed"):
                 click.echo("  " + outcome_line(o))
     exit_if_unplanned(result.unplanned)
-    if result.ran and any(o.status == "failed" for o in result.outcomes):
+    if result.failed:
         sys.exit(1)
 
 
@@ -169,11 +155,10 @@ def serve(obj: Context, every: str, workers: int | None) -> None:
     finished first, nothing new starts.
     """
     import signal
-    import time
 
     from runner import api
     from runner.errors import UsageError
-    from runner.model.timeutil import BadValue, parse_duration
+    from runner.model.timeutil import BadValue, format_utc, parse_duration
 
     try:
         interval = parse_duration(every).total_seconds()
@@ -185,25 +170,14 @@ def serve(obj: Context, every: str, workers: int | None) -> None:
 
     def handler(signum: int, _frame: Any) -> None:
         stop["flag"] = True
-        click.echo(f"{datetime.now(UTC).strftime('%Y-%m-%dT%H:%M:%SZ')} stopping after the current window "
-                   f"(signal {signum})", err=True)
+        click.echo(f"{format_utc(datetime.now(UTC))} stopping after the current window (signal {signum})", err=True)
+
+    def on_error(message: str, at: datetime | None) -> None:
+        click.echo(f"{format_utc(at)} {message}" if at is not None else message, err=True)
 
     signal.signal(signal.SIGTERM, handler)
     signal.signal(signal.SIGINT, handler)
-    ws = api.workspace(obj.root)
-    while not stop["flag"]:
-        started = time.monotonic()
-        now = datetime.now(UTC)
-        try:
-            result = api.tick(obj.root, now, obj.ledger, workers, should_stop=lambda: stop["flag"], ws=ws)
-            click.echo(tick_line(result, now))
-        except Exception as exc:  # noqa: BLE001 - a service keeps going; the error is logged
-            click.echo(f"{now.strftime('%Y-%m-%dT%H:%M:%SZ')} tick failed: {exc}", err=True)
-        while not stop["flag"] and time.monotonic() - started < interval:
-            time.sleep(min(0.5, interval))
-        if not stop["flag"]:
-            try:
-                ws = api.workspace(obj.root)
-            except Exception as exc:  # noqa: BLE001 - keep the last valid jobs
-                click.echo(f"job files invalid, keeping the previous ones: {str(exc).splitlines()[0]}", err=True)
-    click.echo(f"{datetime.now(UTC).strftime('%Y-%m-%dT%H:%M:%SZ')} stopped")
+    api.serve(obj.root, interval=interval, ledger=obj.ledger, workers=workers or 1,
+              should_stop=lambda: stop["flag"], on_tick=lambda result, now: click.echo(tick_line(result, now)),
+              on_error=on_error)
+    click.echo(f"{format_utc(datetime.now(UTC))} stopped")

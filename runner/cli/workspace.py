@@ -25,9 +25,9 @@ def check(obj: Context, at: str | None, as_json: bool) -> None:
     """
     from runner import api
 
-    report = api.check(obj.root, clock(at))
+    report = api.check(obj.root, at=clock(at))
     if as_json:
-        emit_json({"ok": True, "jobs": [j.as_dict() for j in report.jobs], "warnings": report.warnings})
+        emit_json(report.as_dict())
         return
     for w in report.warnings:
         click.echo(w, err=True)
@@ -57,9 +57,8 @@ def windows(obj: Context, job: str, lo: str | None, hi: str | None, at: str | No
     """
     from runner import api
 
-    ws = api.workspace(obj.root)
-    rows = api.windows(ws, job, api.parse_bound(ws, job, lo, "--from"), api.parse_bound(ws, job, hi, "--to"),
-                       clock(at))
+    found = api.windows(obj.root, job=job, lo=lo, hi=hi, at=clock(at))
+    rows = [w.as_dict() for w in found]
     if as_json:
         emit_json(rows)
         return
@@ -72,15 +71,15 @@ def windows(obj: Context, job: str, lo: str | None, hi: str | None, at: str | No
         table.add_row(r["start"], r["end"], r["start_utc"], r["end_utc"], r["length"])
     console = make_console()
     console.print(table)
-    console.print(f"{len(rows)} window(s) of {job}, {ws.cadence(job).describe()}")
+    console.print(f"{len(rows)} window(s) of {job}, {found.cadence}")
 
 
 @click.command()
 def schema() -> None:
     """Print the JSON Schema of a job file (for editors that validate YAML as you type)."""
-    from runner.model.loading import job_schema
+    from runner import api
 
-    emit_json(job_schema())
+    emit_json(api.schema())
 
 
 @click.command()
@@ -90,10 +89,8 @@ def schema() -> None:
 def graph(obj: Context, fmt: str) -> None:
     """Print the job graph: which job reads which."""
     from runner import api
-    from runner.core.drawing import render
 
-    ws = api.workspace(obj.root)
-    click.echo(render(ws.graph, ws.jobs, fmt), nl=False)
+    click.echo(api.graph(obj.root, fmt=fmt), nl=False)
 
 
 @click.command()
@@ -118,10 +115,11 @@ def demo(obj: Context, workers: int | None) -> None:
     click.echo("writing the demo's landing data into state/landing/ ...")
     try:
         with stoppable():
-            summary, result, at = api.demo(obj.root, datetime.now(UTC), obj.ledger, workers,
-                                           on_outcome=progress.update, on_plan=on_plan)
+            done = api.demo(obj.root, now=datetime.now(UTC), ledger=obj.ledger, workers=workers,
+                            on_outcome=progress.update, on_plan=on_plan)
     finally:
         progress.stop()
+    summary, result = done.landing, done.backfill
     click.echo(f"landing: {summary.rides} rides ({summary.bad_rows} bad rows, {summary.late_files} late files), "
                f"{summary.dock_events} dock events; {summary.written} file(s) written, "
                f"{summary.unchanged} already in place")
@@ -147,7 +145,7 @@ def init(directory: Path) -> None:
     """Start a new workspace in DIRECTORY: jobs/ with one commented example job, and state/."""
     from runner import api
 
-    written = api.init(directory, datetime.now(UTC))
+    written = api.init(directory, now=datetime.now(UTC))
     for path in written:
         click.echo(f"wrote {path}")
     click.echo(f"next: cd {directory} && weir check")

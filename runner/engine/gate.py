@@ -20,6 +20,7 @@ import contextlib
 import hashlib
 import json
 import os
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -85,24 +86,30 @@ def observe_files(root: Path, templates: list[str], modules: list[str]) -> str:
     return h.hexdigest()
 
 
-def fresh(root: Path, at: datetime, ledger_url: str | None) -> datetime | None | bool:
-    """When the gate says nothing is due at `at`: the instant it holds until (None: no
-    clock-driven change ahead). False when a full tick is needed."""
+@dataclass(frozen=True)
+class Idle:
+    """The gate holds: nothing can be due before `until` (None: no change ahead by the clock alone)."""
+
+    until: datetime | None
+
+
+def fresh(root: Path, at: datetime, ledger_url: str | None) -> Idle | None:
+    """`Idle` when the gate says nothing is due at `at`; None when a full tick is needed."""
     path = root / GATE
     try:
         record = json.loads(path.read_text())
     except (OSError, ValueError):
-        return False
+        return None
     ledger_file = sqlite_file(root, ledger_url)
     if ledger_file is None or record.get("ledger") != ledger_url or record.get("version") != 1:
-        return False
+        return None
     wake = record.get("wake_at")
     wake_at = datetime.fromisoformat(wake) if wake else None
     if wake_at is not None and at >= wake_at:
-        return False
+        return None
     if observe(root, record.get("templates", []), record.get("modules", []), ledger_file) != record.get("observed"):
-        return False
-    return wake_at
+        return None
+    return Idle(wake_at)
 
 
 def write(root: Path, ledger_url: str | None, templates: list[str], modules: list[str],

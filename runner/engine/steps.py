@@ -32,7 +32,7 @@ class StepError(WeirError):
     """A step could not be built (bad SQL, python step not importable, wrong return type)."""
 
 
-def _module_file(root: Path, module: str) -> Path:
+def module_file(root: Path, module: str) -> Path:
     _on_path(root)
     try:
         spec = importlib.util.find_spec(module)
@@ -61,7 +61,7 @@ def code_pieces(spec: JobSpec, root: Path) -> list[tuple[str, str]]:
             pieces.append((f"{label} sql", step.sql))
         else:
             module = step.python.split(":")[0]
-            path = _module_file(root, module)
+            path = module_file(root, module)
             try:
                 text = path.read_bytes().decode("utf-8", errors="replace")
             except OSError as exc:
@@ -76,7 +76,7 @@ _loaded: dict[str, tuple[float, int]] = {}
 def load_callable(root: Path, ref: str) -> Any:
     """Import `package.module:function` from the workspace (reloaded when its file changed)."""
     module_name, func_name = ref.split(":")
-    path = _module_file(root, module_name)
+    path = module_file(root, module_name)
     stamp = (path.stat().st_mtime, path.stat().st_size)
     loaded = sys.modules.get(module_name)
     if loaded is not None and Path(getattr(loaded, "__file__", "") or "").resolve() != path.resolve():

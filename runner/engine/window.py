@@ -29,7 +29,7 @@ from typing import Any
 
 from runner import __version__
 from runner.core import fingerprints as fp
-from runner.core.paths import render
+from runner.core.paths import database_url, render
 from runner.core.windows import Window
 from runner.core.workspace import Workspace, producer_windows
 from runner.io.ledger.owners import owner_id
@@ -373,7 +373,7 @@ def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: 
         stats.check_fractions()
         check_output(frame.lazy(), list(out.checks), previous, output=f"table {out.table}")
         _confirm(ctx, job, window, fence)  # fencing: only the claim's holder replaces the rows
-        rows, digest = sinks.write_table(_db_url(ws.root, out.database), out.table, frame, window.key)
+        rows, digest = sinks.write_table(database_url(ws.root, out.database), out.table, frame, window.key)
         location, checksum = f"table {out.table}", None
     finished = {
         "status": "done", "seconds": time.perf_counter() - t0, "step_seconds": step_seconds,
@@ -421,13 +421,6 @@ def _ingested(prep: Prepared) -> str | None:
     return utc_text(datetime.fromtimestamp(prep.ingested_ns / 1e9, UTC))
 
 
-def _db_url(root: Path, url: str | None) -> str:
-    from runner.core.paths import database_url
-
-    assert url is not None
-    return database_url(root, url)
-
-
 def _producer_frame(ws: Workspace, source: JobInput, producers: list[Producer], stats: Any) -> Any:
     import polars as pl
 
@@ -451,7 +444,7 @@ def _producer_frame(ws: Workspace, source: JobInput, producers: list[Producer], 
                 stats.counted = True
         return frame
     keys = [p.window.key for p in producers]
-    rows = table_rows(_db_url(ws.root, out.database), out.table, keys) if keys else None
+    rows = table_rows(database_url(ws.root, out.database), out.table, keys) if keys else None
     if rows is None or (rows.height == 0 and empty is not None and not rows.columns):
         return pl.LazyFrame(schema=dict(empty) if empty is not None else {})
     return rows.lazy()
@@ -477,7 +470,7 @@ def _previous_output(ctx: RunContext, job: str, window: Window) -> Any:
         if not path.exists():
             return None
         return pl.scan_parquet(path) if out.file_format == "parquet" else pl.scan_csv(path)
-    return table_rows(_db_url(ctx.ws.root, out.database), out.table, [earlier.key]).lazy()
+    return table_rows(database_url(ctx.ws.root, out.database), out.table, [earlier.key]).lazy()
 
 
 def error_text(exc: BaseException) -> str:
@@ -594,6 +587,6 @@ def _intact_and_current(ctx: RunContext, job: str, window: Window, fingerprint: 
         if out.path is not None:
             return bool(state["output_checksum"]) and file_sha256(ctx.ws.root / state["output"]) == state[
                 "output_checksum"]
-        return read_table_digest(_db_url(ctx.ws.root, out.database), out.table, window.key) == state["output_digest"]
+        return read_table_digest(database_url(ctx.ws.root, out.database), out.table, window.key) == state["output_digest"]
     except Exception:  # noqa: BLE001 - an output that cannot be read is not intact
         return False

@@ -1,4 +1,4 @@
-"""SQLAlchemy engines for the databases weir writes: the ledger and table outputs.
+"""SQLAlchemy engines for the databases weir reads and writes: the ledger, inputs and table outputs.
 
 One place configures SQLite connections for both. SQLite engines wait for a
 lock up to the busy timeout (`WEIR_LEDGER_TIMEOUT` seconds, default 60)
@@ -16,6 +16,14 @@ from typing import Any
 import sqlalchemy as sa
 
 READ = {"weir_read": True}  # execution options of a transaction that only reads (plain BEGIN)
+
+
+def masked(url: str) -> str:
+    """`url` fit to show: its password replaced by `***` (an unparsable URL comes back as it was)."""
+    try:
+        return sa.engine.make_url(url).render_as_string(hide_password=True)
+    except Exception:  # noqa: BLE001 - only for showing
+        return url
 
 
 def busy_timeout() -> float:

@@ -18,6 +18,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from runner.core.paths import database_url
 from runner.io.inputfiles import BadRows, InputError
 from runner.model.columns import Column
 from runner.model.spec import DatabaseInput, FileInput
@@ -683,13 +684,14 @@ def database_frame(root: Path, name: str, source: DatabaseInput, window: Window,
     import sqlalchemy as sa
 
     from runner.core.fingerprints import frame_digest
+    from runner.io.databases import masked
 
-    url = _expand_sqlite(root, source.database)
+    url = database_url(root, source.database)
     params = {"window_start": window.start.replace(tzinfo=None), "window_end": window.end.replace(tzinfo=None)}
     try:
         engine = sa.create_engine(url)
     except Exception as exc:  # noqa: BLE001 - any driver error is the user's URL
-        raise InputError(f"input {name}: cannot open {_mask(url)}: {exc}") from None
+        raise InputError(f"input {name}: cannot open {masked(url)}: {exc}") from None
     try:
         with engine.connect() as conn:
             if source.table is not None:
@@ -712,11 +714,11 @@ def database_frame(root: Path, name: str, source: DatabaseInput, window: Window,
             cols = list(result.keys())
             rows = result.fetchall()
     except sa.exc.SQLAlchemyError as exc:
-        raise InputError(f"input {name}: query failed on {_mask(url)}: {str(exc).splitlines()[0]}") from None
+        raise InputError(f"input {name}: query failed on {masked(url)}: {str(exc).splitlines()[0]}") from None
     finally:
         engine.dispose()
     frame = pl.DataFrame([tuple(r) for r in rows], schema=cols, orient="row", infer_schema_length=None)
-    entry = {"input": name, "path": f"{_mask(url)} {source.table or 'query'}", "rows": frame.height,
+    entry = {"input": name, "path": f"{masked(url)} {source.table or 'query'}", "rows": frame.height,
              "digest": frame_digest(frame)}
     columns = declared_columns(source)
     key = list(source.key or [])
@@ -724,7 +726,7 @@ def database_frame(root: Path, name: str, source: DatabaseInput, window: Window,
         missing = [c for c in dict.fromkeys([*columns, *key]) if c not in frame.columns]
         if missing:
             raise InputError(f"input {name}: the query returns no column(s) {', '.join(missing)}")
-        label = f"{_mask(url)} {source.table or 'query'}"
+        label = f"{masked(url)} {source.table or 'query'}"
         rows = frame.with_row_index(ROW).with_columns(pl.lit(0, dtype=pl.UInt32).alias(FILE))
         repeats = None
         if key:
@@ -739,19 +741,3 @@ def database_frame(root: Path, name: str, source: DatabaseInput, window: Window,
     else:
         stats.tally(name, frame.height, 0, 0)
     return frame.lazy(), entry
-
-
-def _expand_sqlite(root: Path, url: str) -> str:
-    """Relative SQLite paths are relative to the workspace, not the current folder."""
-    from runner.core.paths import database_url
-
-    return database_url(root, url)
-
-
-def _mask(url: str) -> str:
-    try:
-        import sqlalchemy as sa
-
-        return sa.engine.make_url(url).render_as_string(hide_password=True)
-    except Exception:  # noqa: BLE001
-        return url

@@ -200,6 +200,18 @@ def default_url(root: Path) -> str:
     return f"sqlite:///{root / LEDGER}"
 
 
+def open_ledger(root: Path | str, url: str | None = None, create: bool = True) -> Ledger:
+    """The ledger of the workspace at `root`: `url`, else `state/ledger.sqlite` inside it.
+
+    A relative SQLite path in `url` is relative to the workspace, as for
+    `database:` in job files (`runner.core.paths.database_url`): the one rule.
+    """
+    from runner.core.paths import database_url
+
+    base = Path(root).resolve()
+    return Ledger(database_url(base, url) if url else default_url(base), create=create)
+
+
 class Ledger:
     """A connection to one ledger database. Cheap to create; one per process.
 

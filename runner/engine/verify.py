@@ -1,0 +1,87 @@
+"""`weir verify`: every done window's output read again and compared with what the ledger recorded.
+
+A file output is compared by its SHA-256, a table output by the digest of the
+window's rows. Missing, changed and unreadable outputs are reported and their
+windows marked stale by output, so the next tick or backfill restores them.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING, Any
+
+from runner.errors import WeirError
+
+if TYPE_CHECKING:
+    from runner.core.workspace import Workspace
+    from runner.io.ledger.store import Ledger
+
+
+def verify_outputs(ws: Workspace, ledger: Ledger, jobs: list[str]) -> list[dict[str, Any]]:
+    """Re-read every done window's output; report (and mark stale by output) missing, changed or
+    unreadable ones (a file that cannot be read, a database that is not one)."""
+    import polars as pl
+
+    problems = []
+    for job in ws.select(jobs):
+        states = ledger.states(job).filter(pl.col("state") == "done")
+        bad: dict[str, list[str]] = {"missing": [], "changed": [], "unreadable": []}
+        fine: list[str] = []
+        broken: str | None = None  # why the job's output database cannot be read, once found
+        for row in states.iter_rows(named=True):
+            if broken is None:
+                verdict, detail = _verify_output(ws, job, row)
+                if verdict == "unreadable" and ws.jobs[job].spec.output.path is None:
+                    broken = detail
+            else:
+                verdict, detail = "unreadable", broken
+            if verdict:
+                bad[verdict].append(row["window_key"])
+                problems.append({"job": job, "window": row["window_id"], "output": row["output"],
+                                 "problem": verdict, "detail": detail})
+            elif row["output_state"]:
+                fine.append(row["window_key"])
+        for verdict, keys in bad.items():
+            if keys:
+                ledger.set_output_state(job, keys, verdict)
+        if fine:
+            ledger.set_output_state(job, fine, None)
+    return problems
+
+
+def _verify_output(ws: Workspace, job: str, row: dict[str, Any]) -> tuple[str | None, str | None]:
+    """One done window's output against the ledger: (None | missing | changed | unreadable, detail)."""
+    import sqlalchemy as sa
+
+    from runner.core.paths import database_url
+    from runner.io.files import file_sha256
+    from runner.io.outputs import read_table_digest
+    from runner.io.readers import table_rows
+
+    out = ws.jobs[job].spec.output
+    if out.path is not None:
+        path = ws.root / row["output"]
+        if not path.exists():
+            return "missing", None
+        try:
+            same = not row["output_checksum"] or file_sha256(path) == row["output_checksum"]
+        except OSError as exc:
+            return "unreadable", exc.strerror or str(exc)
+        return (None if same else "changed"), None
+    url = database_url(ws.root, out.database)
+    try:
+        digest = read_table_digest(url, out.table, row["window_key"])
+        if digest is None:
+            return "missing", None
+        if digest == row["output_digest"]:
+            return None, None
+        if table_rows(url, out.table, [row["window_key"]]).height == 0:
+            return "missing", None  # the window's rows were deleted (a run that wrote none matches)
+        return "changed", None
+    except sa.exc.OperationalError as exc:  # locked, cannot connect: the database is there, not reachable now
+        raise WeirError(f"cannot read table {out.table} of job {job}: {_first_line(exc)}") from None
+    except sa.exc.DatabaseError as exc:  # not a database, malformed: the output is damaged
+        return "unreadable", _first_line(exc)
+
+
+def _first_line(exc: BaseException) -> str:
+    return str(getattr(exc, "orig", None) or exc).splitlines()[0]
