@@ -65,15 +65,15 @@ def test_one_job_that_cannot_be_planned_does_not_stop_the_others(make_workspace,
                           'output: {path: "state/reader/{start:%Y-%m-%d}.csv"}\n',
     })
     _land(root, "in/2026-01-01.csv", "in/2026-01-02.csv")
-    from runner.core import planner
-    real = planner.assess_job
+    from runner.core import assessment
+    real = assessment.assess_job
 
     def failing(ws, job, *args, **kwargs):
         if job == "broken":
             raise ValueError("a planning bug")
         return real(ws, job, *args, **kwargs)
 
-    monkeypatch.setattr(planner, "assess_job", failing)
+    monkeypatch.setattr(assessment, "assess_job", failing)
     tick = weir(root, "tick", "--at", "2026-01-05")
     assert tick.exit_code == 1
     assert "broken could not be planned: ValueError: a planning bug" in tick.output

@@ -444,7 +444,8 @@ def test_a_ledger_of_schema_1_gains_fencing_numbers_and_keeps_its_claims(tmp_pat
     """Claims gained a fencing number (schema 2); a ledger written before is upgraded in place."""
     import sqlite3
 
-    from runner.io.ledger.store import SCHEMA_VERSION, Ledger
+    from runner.io.ledger.schema import SCHEMA_VERSION
+    from runner.io.ledger.store import Ledger
 
     path = tmp_path / "ledger.sqlite"
     con = sqlite3.connect(path)  # the schema 1 tables as the previous weir created them

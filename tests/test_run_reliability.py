@@ -707,7 +707,7 @@ def _one_line_error(result) -> str:
 
 
 def test_ledger_from_a_newer_weir_is_refused_with_one_line(rides_ws: Path):
-    from runner.io.ledger.store import SCHEMA_VERSION
+    from runner.io.ledger.schema import SCHEMA_VERSION
 
     backfill(rides_ws, "rides_hourly", lo=LO, hi="2026-03-28T02:00")
     conn = sqlite3.connect(ledger_path(rides_ws))

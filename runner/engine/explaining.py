@@ -30,7 +30,7 @@ def explain_window(ws: Workspace, ledger: Ledger, job: str, window: Window, at: 
     import polars as pl
 
     from runner.core import explain
-    from runner.core.planner import parse_run_time
+    from runner.core.assessment import parse_run_time
     from runner.engine.survey import survey
     from runner.engine.window import RunContext, prepare, spec_and_code
 

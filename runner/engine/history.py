@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING, Any
 
-from runner.core.planner import parse_run_time
+from runner.core.assessment import parse_run_time
 from runner.model.timeutil import parse_utc
 
 if TYPE_CHECKING:

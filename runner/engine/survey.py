@@ -14,7 +14,7 @@ from datetime import datetime
 from typing import Any
 
 from runner.core import fingerprints as fp
-from runner.core.planner import Probe, Snapshot, assess
+from runner.core.assessment import Probe, Snapshot, assess
 from runner.core.windows import Window
 from runner.core.workspace import Workspace
 from runner.engine.window import spec_and_code

@@ -11,9 +11,13 @@ half-way when another process writes. Other databases get a plain engine.
 from __future__ import annotations
 
 import os
-from typing import Any
+from collections.abc import Iterable
+from typing import TYPE_CHECKING, Any
 
 import sqlalchemy as sa
+
+if TYPE_CHECKING:
+    import polars as pl
 
 READ = {"weir_read": True}  # execution options of a transaction that only reads (plain BEGIN)
 
@@ -24,6 +28,14 @@ def masked(url: str) -> str:
         return sa.engine.make_url(url).render_as_string(hide_password=True)
     except Exception:  # noqa: BLE001 - only for showing
         return url
+
+
+def rows_frame(rows: Iterable[Any], schema: Any) -> pl.DataFrame:
+    """A polars frame of database rows (tuples or Row objects); `schema` gives names and dtypes, or
+    names only (dtypes are then inferred from every row, not the first hundred)."""
+    import polars as pl
+
+    return pl.DataFrame([tuple(r) for r in rows], schema=schema, orient="row", infer_schema_length=None)
 
 
 def busy_timeout() -> float:

@@ -33,6 +33,7 @@ from typing import IO, TYPE_CHECKING, Any
 
 from runner.core.fingerprints import batches_digest, frame_digest, sort_columns
 from runner.errors import WeirError
+from runner.io.databases import rows_frame
 from runner.io.files import escapes, file_sha256
 
 if TYPE_CHECKING:
@@ -383,13 +384,12 @@ def write_table(url: str, table: str, frame: pl.DataFrame, window_key: str) -> t
 
 def table_digest(conn: Any, tbl: Any, window_key: str) -> str:
     """Content digest of one window's rows in a table output, as read back."""
-    import polars as pl
     import sqlalchemy as sa
 
     cols = [c for c in tbl.c if c.name != "window_start"]
     result = conn.execute(sa.select(*cols).where(tbl.c.window_start == window_key))
     names = list(result.keys())
-    data = pl.DataFrame([tuple(r) for r in result.fetchall()], schema=names, orient="row", infer_schema_length=None)
+    data = rows_frame(result.fetchall(), names)
     return frame_digest(data)
 
 

@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from runner.core.paths import database_url
+from runner.io.databases import rows_frame
 from runner.io.inputfiles import BadRows, InputError
 from runner.model.columns import Column
 from runner.model.spec import DatabaseInput, FileInput
@@ -657,7 +658,6 @@ def output_frame(paths: list[str], empty_schema: dict[str, Any] | None) -> pl.La
 
 def table_rows(url: str, table: str, keys: list[str]) -> pl.DataFrame:
     """Rows of a table output for the given window keys (column window_start)."""
-    import polars as pl
     import sqlalchemy as sa
 
     engine = sa.create_engine(url)
@@ -669,7 +669,7 @@ def table_rows(url: str, table: str, keys: list[str]) -> pl.DataFrame:
             rows = result.fetchall()
     finally:
         engine.dispose()
-    frame = pl.DataFrame([tuple(r) for r in rows], schema=cols, orient="row", infer_schema_length=None)
+    frame = rows_frame(rows, cols)
     return frame.drop("window_start")
 
 
@@ -717,7 +717,7 @@ def database_frame(root: Path, name: str, source: DatabaseInput, window: Window,
         raise InputError(f"input {name}: query failed on {masked(url)}: {str(exc).splitlines()[0]}") from None
     finally:
         engine.dispose()
-    frame = pl.DataFrame([tuple(r) for r in rows], schema=cols, orient="row", infer_schema_length=None)
+    frame = rows_frame(rows, cols)
     entry = {"input": name, "path": f"{masked(url)} {source.table or 'query'}", "rows": frame.height,
              "digest": frame_digest(frame)}
     columns = declared_columns(source)

@@ -393,7 +393,7 @@ def window_runs(ledger: Ledger, job: str) -> pl.DataFrame:
     import polars as pl
     import sqlalchemy as sa
 
-    from runner.io.ledger.store import runs, windows
+    from runner.io.ledger.schema import runs, windows
 
     schema = {"run_id": pl.Int64, "run_finished_at": pl.String, "run_rows_read": pl.Int64,
               "run_rows_dropped": pl.Int64, "run_rows_written": pl.Int64, "run_error": pl.String}

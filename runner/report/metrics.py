@@ -97,7 +97,7 @@ def _light_views(ws: Workspace, ledger: Ledger, at: datetime) -> ReportData:
 
     from runner.core.planner import next_change
     from runner.engine.survey import survey
-    from runner.io.ledger.store import runs, windows
+    from runner.io.ledger.schema import runs, windows
     from runner.report.data import ReportData, axis_zone, job_view, reach, with_shown_states
 
     assessed = survey(ws, ledger, at, None, recheck_all=True, extras=True)

@@ -87,7 +87,8 @@ def build(root: Path) -> None:
     from runner.engine.loading import load_workspace
     from runner.engine.survey import InputProber
     from runner.engine.window import spec_and_code
-    from runner.io.ledger.store import Ledger, default_url, runs, texts, windows
+    from runner.io.ledger.schema import runs, texts, windows
+    from runner.io.ledger.store import Ledger, default_url
     from runner.model.timeutil import format_instant
 
     (root / "jobs").mkdir(parents=True)

@@ -44,9 +44,11 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent))  # the tests folder: the DevTools client (helpers_browser.py)
 
 from runner.core import fingerprints as fp  # noqa: E402
-from runner.core.planner import Snapshot, _upstream, assess_job  # noqa: E402
+from runner.core.assessment import Snapshot, assess_job  # noqa: E402
+from runner.core.planner import _upstream  # noqa: E402
 from runner.engine.loading import load_workspace  # noqa: E402
 from runner.engine.window import spec_and_code  # noqa: E402
+from runner.io.ledger import schema as ledger_schema  # noqa: E402
 from runner.io.ledger import store as ledger_mod  # noqa: E402
 from runner.report import build_report, write_report  # noqa: E402
 from runner.report.data import collect  # noqa: E402
@@ -160,8 +162,8 @@ def fill_ledger(root: Path, seed: int = 7) -> int:
                          "finished_at": run["finished_at"], "seconds": seconds, "output_state": None})
         with ledger.engine.begin() as conn:
             for k in range(0, len(runs), 5000):
-                conn.execute(sa.insert(ledger_mod.runs), runs[k:k + 5000])
-                conn.execute(sa.insert(ledger_mod.windows), wins[k:k + 5000])
+                conn.execute(sa.insert(ledger_schema.runs), runs[k:k + 5000])
+                conn.execute(sa.insert(ledger_schema.windows), wins[k:k + 5000])
         written += len(wins)
         states[name] = ledger.plan_states(name, spec_p.hash, code_p.hash, upstream=True, digests=True,
                                           extras=True)
@@ -169,7 +171,7 @@ def fill_ledger(root: Path, seed: int = 7) -> int:
     # one window being worked on right now (claims expire on the real clock)
     last_key = assessed[ROOTS[0]]["window_key"][-1]
     with ledger.engine.begin() as conn:
-        conn.execute(sa.insert(ledger_mod.claims).values(job=ROOTS[0], window_key=last_key, owner="bench:1:1",
+        conn.execute(sa.insert(ledger_schema.claims).values(job=ROOTS[0], window_key=last_key, owner="bench:1:1",
                                                          expires=time.time() + 7200))
     ledger.dispose()
     return written

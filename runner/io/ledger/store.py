@@ -44,105 +44,23 @@ from sqlalchemy import exc as sa_exc
 
 from runner.errors import LedgerError
 from runner.io.ledger.owners import holder_gone
+from runner.io.ledger.reads import LedgerReads
+from runner.io.ledger.schema import (
+    STATE_ROW,
+    claims,
+    create_sqlite,
+    ensure_schema,
+    explain_error,
+    locks,
+    refuse_empty,
+    runs,
+    texts,
+    windows,
+)
 
 if TYPE_CHECKING:
-    import polars as pl
+    pass
 
-SCHEMA_VERSION = 2  # 2: claims carry a fencing number
-
-metadata = sa.MetaData()
-
-meta = sa.Table(
-    "weir_meta", metadata,
-    sa.Column("key", sa.String(64), primary_key=True),
-    sa.Column("value", sa.Text, nullable=False),
-)
-
-runs = sa.Table(
-    "weir_runs", metadata,
-    sa.Column("id", sa.Integer, primary_key=True, autoincrement=True),
-    sa.Column("job", sa.String(200), nullable=False),
-    sa.Column("window_key", sa.String(32), nullable=False),
-    sa.Column("window_end", sa.String(32), nullable=False),
-    sa.Column("window_id", sa.String(40), nullable=False),
-    sa.Column("attempt", sa.Integer, nullable=False, default=1),
-    sa.Column("status", sa.String(16), nullable=False),
-    sa.Column("forced", sa.Boolean, nullable=False, default=False),
-    sa.Column("fingerprint", sa.String(64)),
-    sa.Column("fp_spec", sa.String(64)),
-    sa.Column("fp_code", sa.String(64)),
-    sa.Column("fp_input", sa.String(64)),
-    sa.Column("fp_upstream", sa.String(64)),
-    sa.Column("started_at", sa.String(32), nullable=False),
-    sa.Column("finished_at", sa.String(32)),
-    sa.Column("seconds", sa.Float),
-    sa.Column("step_seconds", sa.Float),
-    sa.Column("rows_read", sa.BigInteger),
-    sa.Column("rows_dropped", sa.BigInteger),
-    sa.Column("rows_rejected", sa.BigInteger),
-    sa.Column("rows_written", sa.BigInteger),
-    sa.Column("output", sa.Text),
-    sa.Column("output_digest", sa.String(64)),
-    sa.Column("output_checksum", sa.String(64)),
-    sa.Column("error", sa.Text),
-    sa.Column("failed_check", sa.Text),
-    sa.Column("host", sa.String(200)),
-    sa.Column("pid", sa.Integer),
-    sa.Column("code_version", sa.String(200)),
-    sa.Column("weir_version", sa.String(32)),
-    sa.Column("ingested_at", sa.String(32)),
-    sa.Index("ix_weir_runs_job_window", "job", "window_key"),
-)
-
-windows = sa.Table(
-    "weir_windows", metadata,
-    sa.Column("job", sa.String(200), primary_key=True),
-    sa.Column("window_key", sa.String(32), primary_key=True),
-    sa.Column("window_end", sa.String(32), nullable=False),
-    sa.Column("window_id", sa.String(40), nullable=False),
-    sa.Column("state", sa.String(16), nullable=False),
-    sa.Column("run_id", sa.Integer, nullable=False),
-    sa.Column("fingerprint", sa.String(64)),
-    sa.Column("fp_spec", sa.String(64)),
-    sa.Column("fp_code", sa.String(64)),
-    sa.Column("fp_input", sa.String(64)),
-    sa.Column("fp_upstream", sa.String(64)),
-    sa.Column("output", sa.Text),
-    sa.Column("output_digest", sa.String(64)),
-    sa.Column("output_checksum", sa.String(64)),
-    sa.Column("last_fingerprint", sa.String(64)),
-    sa.Column("good_run_id", sa.Integer),
-    sa.Column("failures", sa.Integer, nullable=False, default=0),
-    sa.Column("ingested_at", sa.String(32)),
-    sa.Column("finished_at", sa.String(32)),
-    sa.Column("seconds", sa.Float),
-    sa.Column("output_state", sa.String(16)),
-)
-
-texts = sa.Table(
-    "weir_texts", metadata,
-    sa.Column("hash", sa.String(64), primary_key=True),
-    sa.Column("kind", sa.String(16), nullable=False),
-    sa.Column("body", sa.Text, nullable=False),
-)
-
-claims = sa.Table(
-    "weir_claims", metadata,
-    sa.Column("job", sa.String(200), primary_key=True),
-    sa.Column("window_key", sa.String(32), primary_key=True),
-    sa.Column("owner", sa.String(200), nullable=False),
-    sa.Column("expires", sa.Float, nullable=False),
-    sa.Column("fence", sa.BigInteger, nullable=False, default=0),
-)
-
-locks = sa.Table(
-    "weir_locks", metadata,
-    sa.Column("name", sa.String(200), primary_key=True),
-    sa.Column("owner", sa.String(200), nullable=False),
-    sa.Column("expires", sa.Float, nullable=False),
-)
-
-STATE_COLUMNS = [c.name for c in windows.columns]
 
 # Statements on the per-window path, built once: executing the same statement
 # object with fresh parameters lets SQLAlchemy reuse its compiled form instead
@@ -154,7 +72,6 @@ _ABANDON_RUNS = sa.update(runs).where(
     runs.c.job == _b("b_job"), runs.c.window_key == _b("b_key"), runs.c.status == "running",
     runs.c.id < _b("b_run_id")).values(status="abandoned")
 _RUN_FINGERPRINT = sa.select(runs.c.fingerprint).where(runs.c.id == _b("b_run_id"))
-_STATE_ROW = sa.select(windows).where(windows.c.job == _b("b_job"), windows.c.window_key == _b("b_key"))
 _UPDATE_WINDOW = sa.update(windows).where(windows.c.job == _b("b_job"), windows.c.window_key == _b("b_key"))
 _INSERT_WINDOW = sa.insert(windows)
 _CLAIM_WHERE = (claims.c.job == _b("b_job"), claims.c.window_key == _b("b_key"))
@@ -212,7 +129,7 @@ def open_ledger(root: Path | str, url: str | None = None, create: bool = True) -
     return Ledger(database_url(base, url) if url else default_url(base), create=create)
 
 
-class Ledger:
+class Ledger(LedgerReads):
     """A connection to one ledger database. Cheap to create; one per process.
 
     Pickled (to hand a run context to a worker process) as its URL: the
@@ -239,10 +156,10 @@ class Ledger:
             return
         if self._sqlite_path is not None:
             if self.exists:
-                _refuse_empty(self._sqlite_path)
+                refuse_empty(self._sqlite_path)
             else:
                 self._sqlite_path.parent.mkdir(parents=True, exist_ok=True)
-                _create_sqlite(self._sqlite_path)
+                create_sqlite(self._sqlite_path)
         try:
             self.engine = engines.engine(url)
         except (sa_exc.ArgumentError, sa_exc.NoSuchModuleError, ImportError) as exc:
@@ -250,7 +167,7 @@ class Ledger:
         self._reader = self.engine.execution_options(**engines.READ)
         self._now = _server_clock(parsed.get_backend_name())
         self._claims = _ClaimStatements(self._now)
-        _ensure_schema(self.engine, self.url)
+        ensure_schema(self.engine, self.url)
         self._stored_texts: set[str] = set()
 
     # ------------------------------------------------------------ plumbing
@@ -267,9 +184,9 @@ class Ledger:
         except sa_exc.IntegrityError:
             raise  # a subclass of DatabaseError; `_lease` relies on seeing it to fall back to UPDATE
         except sa_exc.OperationalError as exc:
-            raise LedgerError(_explain(self.url, exc)) from None
+            raise LedgerError(explain_error(self.url, exc)) from None
         except sa_exc.DatabaseError as exc:
-            raise LedgerError(_explain(self.url, exc)) from None
+            raise LedgerError(explain_error(self.url, exc)) from None
 
     def dispose(self) -> None:
         if self.engine is not None:
@@ -425,7 +342,7 @@ class Ledger:
                 if not self._take_claim(conn, job, key, owner, lease):
                     return "claimed", None
                 if fingerprint is not None:
-                    state = conn.execute(_STATE_ROW, where).mappings().first()
+                    state = conn.execute(STATE_ROW, where).mappings().first()
                     if (state is not None and state["state"] == "done" and state["fingerprint"] == fingerprint
                             and not state["output_state"]):
                         raise _Current
@@ -502,7 +419,7 @@ class Ledger:
         if "last_fingerprint" not in state:
             state["last_fingerprint"] = conn.execute(_RUN_FINGERPRINT, {"b_run_id": run_id}).scalar()
         if state["state"] == "failed":
-            current = conn.execute(_STATE_ROW, where).mappings().first()
+            current = conn.execute(STATE_ROW, where).mappings().first()
             if current is not None:
                 # keep the last good output's identity: consumers and digests still refer to it
                 for col in ("output", "output_digest", "output_checksum", "good_run_id", "fingerprint",
@@ -522,285 +439,6 @@ class Ledger:
             for key in keys:
                 conn.execute(sa.update(windows).where(windows.c.job == job, windows.c.window_key == key)
                              .values(output_state=value))
-
-    # ------------------------------------------------------------ reading
-
-    def states(self, job: str, lo_key: str | None = None, hi_key: str | None = None) -> pl.DataFrame:
-        """Every window state row of `job` (optionally window_key in [lo, hi)), one query."""
-        import polars as pl
-
-        schema = _state_schema()
-        if self.engine is None:
-            return pl.DataFrame(schema=schema)
-        q = sa.select(*[windows.c[c] for c in STATE_COLUMNS]).where(windows.c.job == job)
-        if lo_key is not None:
-            q = q.where(windows.c.window_key >= lo_key)
-        if hi_key is not None:
-            q = q.where(windows.c.window_key < hi_key)
-        with self._tx(read=True) as conn:
-            rows = conn.execute(q).all()
-        return pl.DataFrame([tuple(r) for r in rows], schema=schema, orient="row")
-
-    def plan_states(self, job: str, spec_hash: str, code_hash: str, input_from: str | None = None,
-                    upstream: bool = False, digests: bool = False, ingested: bool = False,
-                    extras: bool = False) -> pl.DataFrame:
-        """The window states planning needs, compactly: one query over every window of `job`
-        and one over its failed (or flagged) windows.
-
-        The state and the comparisons with the job-wide spec and code hashes come
-        back as one small integer (so a year of windows does not bring back a year
-        of identical hash strings); `fp_input` only for windows keyed at or after
-        `input_from` (all when None) and windows not done. Columns: window_key,
-        state, spec_ok, code_ok, fp_input, failures, finished_at, last_fingerprint,
-        output_state, run_id; optionally fp_upstream, output_digest (`digests`),
-        ingested_at, and output, seconds (`extras`).
-        """
-        import polars as pl
-
-        c = windows.c
-        not_done = c.state != "done"
-        flags = (sa.case((c.state == "done", 1), (c.state == "failed", 2), else_=3)
-                 + sa.case((c.fp_spec == spec_hash, 4), else_=0) + sa.case((c.fp_code == code_hash, 8), else_=0)
-                 + sa.case((c.output_state.is_(None), 0), else_=16))
-        columns: list[tuple[str, Any, Any]] = [
-            ("window_key", c.window_key, pl.String), ("flags", flags, pl.Int64),
-            ("fp_input", c.fp_input if input_from is None else
-             sa.case((sa.or_(c.window_key >= input_from, not_done), c.fp_input), else_=None), pl.String),
-        ]
-        if upstream:
-            columns.append(("fp_upstream", c.fp_upstream, pl.String))
-        if digests:
-            columns.append(("output_digest", c.output_digest, pl.String))
-        if ingested or extras:
-            columns.append(("ingested_at", c.ingested_at, pl.String))
-        if extras:
-            columns += [("output", c.output, pl.String), ("seconds", c.seconds, pl.Float64)]
-        detail_columns: list[tuple[str, Any, Any]] = [
-            ("window_key", c.window_key, pl.String), ("failures", c.failures, pl.Int64),
-            ("finished_at", c.finished_at, pl.String), ("last_fingerprint", c.last_fingerprint, pl.String),
-            ("output_state", c.output_state, pl.String),
-        ]
-        if self.engine is None:
-            main = _frame([], columns)
-            details = _frame([], detail_columns)
-        else:
-            with self._tx(read=True) as conn:
-                # the DBAPI rows as they come: no per-row objects beyond the driver's tuples
-                rows = conn.execute(sa.select(*[e.label(n) for n, e, _ in columns])
-                                    .where(c.job == job)).cursor.fetchall()
-                few = conn.execute(sa.select(*[e.label(n) for n, e, _ in detail_columns]).where(
-                    c.job == job, sa.or_(c.state == "failed", c.output_state.is_not(None)))).cursor.fetchall()
-            main, details = _frame(rows, columns), _frame(few, detail_columns)
-        code = pl.col("flags") % 4
-        main = main.with_columns(
-            pl.when(code == 1).then(pl.lit("done")).when(code == 2).then(pl.lit("failed"))
-            .otherwise(pl.lit("other")).alias("state"),
-            ((pl.col("flags") // 4) % 2 == 1).alias("spec_ok"),
-            ((pl.col("flags") // 8) % 2 == 1).alias("code_ok"),
-        ).drop("flags")
-        if extras:
-            runs = (self._run_ids(job) if self.engine is not None else
-                    _frame([], [("window_key", None, pl.String), ("run_id", None, pl.Int64)]))
-            main = main.join(runs, on="window_key", how="left")
-        return main.join(details, on="window_key", how="left").with_columns(pl.col("failures").fill_null(0))
-
-    def _run_ids(self, job: str) -> pl.DataFrame:
-        c = windows.c
-        with self._tx(read=True) as conn:
-            rows = conn.execute(sa.select(c.window_key, c.run_id).where(c.job == job)).cursor.fetchall()
-        import polars as pl
-
-        return _frame(rows, [("window_key", None, pl.String), ("run_id", None, pl.Int64)])
-
-    def state_rows(self, job: str, keys: Iterable[str]) -> dict[str, dict[str, Any]]:
-        """Window states by key for the given keys of one job (one range query)."""
-        keys = list(keys)
-        if not keys or self.engine is None:
-            return {}
-        q = sa.select(windows).where(windows.c.job == job, windows.c.window_key >= min(keys),
-                                     windows.c.window_key <= max(keys))
-        wanted = set(keys)
-        with self._tx(read=True) as conn:
-            return {r["window_key"]: dict(r) for r in conn.execute(q).mappings() if r["window_key"] in wanted}
-
-    def state_row(self, job: str, key: str) -> dict[str, Any] | None:
-        if self.engine is None:
-            return None
-        with self._tx(read=True) as conn:
-            row = conn.execute(_STATE_ROW, {"b_job": job, "b_key": key}).mappings().first()
-        return dict(row) if row else None
-
-    def done_keys(self, job: str) -> set[str]:
-        """Keys of the windows of `job` recorded done (and not flagged by `weir verify`)."""
-        if self.engine is None:
-            return set()
-        with self._tx(read=True) as conn:
-            rows = conn.execute(sa.select(windows.c.window_key).where(
-                windows.c.job == job, windows.c.state == "done", windows.c.output_state.is_(None))).all()
-        return {r[0] for r in rows}
-
-    def run(self, run_id: int) -> dict[str, Any] | None:
-        if self.engine is None:
-            return None
-        with self._tx(read=True) as conn:
-            row = conn.execute(sa.select(runs).where(runs.c.id == run_id)).mappings().first()
-        return dict(row) if row else None
-
-    def history(self, job: str, key: str | None = None, limit: int | None = None) -> list[dict[str, Any]]:
-        """Runs of `job` (of one window when `key`), newest first."""
-        if self.engine is None:
-            return []
-        q = sa.select(runs).where(runs.c.job == job)
-        if key is not None:
-            q = q.where(runs.c.window_key == key)
-        q = q.order_by(runs.c.id.desc())
-        if limit:
-            q = q.limit(limit)
-        with self._tx(read=True) as conn:
-            return [dict(r) for r in conn.execute(q).mappings()]
-
-    def run_stats(self, job: str) -> pl.DataFrame:
-        """Finished runs of `job` (seconds, step seconds, rows), for estimates and advice."""
-        import polars as pl
-
-        cols = ["window_key", "status", "seconds", "step_seconds", "rows_read", "rows_written", "started_at"]
-        schema = {"window_key": pl.String, "status": pl.String, "seconds": pl.Float64,
-                  "step_seconds": pl.Float64, "rows_read": pl.Int64, "rows_written": pl.Int64,
-                  "started_at": pl.String}
-        if self.engine is None:
-            return pl.DataFrame(schema=schema)
-        q = sa.select(*[runs.c[c] for c in cols]).where(runs.c.job == job, runs.c.status.in_(["done", "failed"]))
-        with self._tx(read=True) as conn:
-            rows = conn.execute(q).all()
-        return pl.DataFrame([tuple(r) for r in rows], schema=schema, orient="row")
-
-    def last_runs(self, job: str) -> pl.DataFrame:
-        """Each window's last finished run (the run its state row points at), one query; for reports."""
-        import polars as pl
-
-        cols = {"run_id": pl.Int64, "status": pl.String, "finished_at": pl.String, "seconds": pl.Float64,
-                "rows_read": pl.Int64, "rows_rejected": pl.Int64, "rows_written": pl.Int64,
-                "fingerprint": pl.String, "error": pl.String}
-        if self.engine is None:
-            return pl.DataFrame(schema=cols)
-        q = (sa.select(runs.c.id, *[runs.c[c] for c in list(cols)[1:]])
-             .select_from(windows.join(runs, runs.c.id == windows.c.run_id)).where(windows.c.job == job))
-        with self._tx(read=True) as conn:
-            rows = conn.execute(q).all()
-        return pl.DataFrame([tuple(r) for r in rows], schema=cols, orient="row")
-
-    def newest_runs(self) -> dict[str, dict[str, Any]]:
-        """Per job: `success` (finish time of its newest done run) and `last` (its newest finished run)."""
-        if self.engine is None:
-            return {}
-        out: dict[str, dict[str, Any]] = {}
-        finished = runs.c.status.in_(["done", "failed"])
-        with self._tx(read=True) as conn:
-            q = sa.select(runs.c.job, sa.func.max(runs.c.finished_at)).where(runs.c.status == "done")
-            for job, when in conn.execute(q.group_by(runs.c.job)):
-                out.setdefault(job, {})["success"] = when
-            jobs = [r[0] for r in conn.execute(sa.select(runs.c.job).where(finished).distinct())]
-            for job in jobs:
-                row = conn.execute(sa.select(runs.c.id, runs.c.status, runs.c.finished_at, runs.c.seconds)
-                                   .where(runs.c.job == job, finished)
-                                   .order_by(runs.c.finished_at.desc(), runs.c.id.desc()).limit(1)).mappings().first()
-                if row is not None:
-                    out.setdefault(job, {})["last"] = dict(row)
-        return out
-
-
-def _frame(rows: list[tuple], columns: list[tuple[str, Any, Any]]) -> pl.DataFrame:
-    """A frame built column by column from DBAPI row tuples."""
-    import polars as pl
-
-    values = list(zip(*rows, strict=True)) if rows else [() for _ in columns]
-    return pl.DataFrame([pl.Series(name, vals, dtype=dtype)
-                         for (name, _, dtype), vals in zip(columns, values, strict=True)])
-
-
-def _state_schema() -> dict[str, Any]:
-    import polars as pl
-
-    types = {sa.Integer: pl.Int64, sa.BigInteger: pl.Int64, sa.Float: pl.Float64, sa.Boolean: pl.Boolean}
-    out = {}
-    for col in windows.columns:
-        out[col.name] = next((v for k, v in types.items() if isinstance(col.type, k)), pl.String)
-    return out
-
-
-def _ensure_schema(engine: sa.Engine, url: str) -> None:
-    """Create the tables (or bring an older schema up to date); refuse a ledger of a newer weir."""
-    try:
-        with engine.begin() as conn:
-            insp = sa.inspect(conn)
-            if insp.has_table(meta.name):
-                row = conn.execute(sa.select(meta.c.value).where(meta.c.key == "schema_version")).first()
-                version = int(row[0]) if row else 0
-                if version > SCHEMA_VERSION:
-                    raise LedgerError(
-                        f"the ledger at {url} was written by a newer weir (schema version {version}; "
-                        f"this weir knows up to {SCHEMA_VERSION}); upgrade weir to use it")
-                if version == SCHEMA_VERSION:
-                    return
-                if version == 1:  # claims live for minutes: a new column with a default is enough
-                    conn.execute(sa.text("ALTER TABLE weir_claims ADD COLUMN fence BIGINT NOT NULL DEFAULT 0"))
-            metadata.create_all(conn)
-            conn.execute(sa.delete(meta).where(meta.c.key == "schema_version"))
-            conn.execute(sa.insert(meta).values(key="schema_version", value=str(SCHEMA_VERSION)))
-    except (sa_exc.OperationalError, sa_exc.DatabaseError) as exc:
-        raise LedgerError(_explain(url, exc)) from None
-
-
-def _create_sqlite(path: Path) -> None:
-    """Make a new SQLite ledger at `path` with its tables, appearing there at once.
-
-    The tables are written to a temporary file beside it, which is then linked
-    to `path` (a hard link fails when the name exists: a concurrent first run
-    simply uses the ledger the other made). So a ledger file weir made is never
-    empty, and an empty one can be refused as damaged.
-    """
-    import secrets
-
-    from runner.io import databases as engines
-    tmp = path.with_name(f".{path.name}.weir-tmp-{os.getpid()}-{secrets.token_hex(4)}")
-    try:
-        made = engines.engine(f"sqlite:///{tmp}")
-        try:
-            _ensure_schema(made, f"sqlite:///{path}")
-        finally:
-            made.dispose()  # the last connection closed: the write-ahead log is folded into the file
-        try:
-            os.link(tmp, path)
-        except FileExistsError:
-            pass
-        except OSError:  # a file system without hard links: a rename, unless another process was first
-            if not path.exists():
-                os.replace(tmp, path)
-    finally:
-        for leftover in (tmp, Path(f"{tmp}-wal"), Path(f"{tmp}-shm")):
-            leftover.unlink(missing_ok=True)
-
-
-def _refuse_empty(path: Path) -> None:
-    """An existing SQLite ledger of 0 bytes is damaged (see `_create_sqlite`), not a new one."""
-    try:
-        empty = path.is_file() and path.stat().st_size == 0
-    except OSError:
-        return  # opening it reports the problem
-    if empty:
-        raise LedgerError(
-            f"the ledger {path} is empty (0 bytes): weir never leaves a ledger empty, so it was cut short "
-            "or replaced; restore it from a backup, or move it away to start afresh (every window is then "
-            "recomputed)")
-
-
-def _explain(url: str, exc: Exception) -> str:
-    text = str(getattr(exc, "orig", exc)) or type(exc).__name__
-    if "locked" in text:
-        return f"the ledger {url} is locked by another process and stayed locked: {text}"
-    if "not a database" in text or "malformed" in text:
-        return f"the ledger {url} is not a readable database ({text}); restore it from a backup or move it away"
-    return f"ledger {url}: {text}"
 
 
 class _Current(Exception):
