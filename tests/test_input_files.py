@@ -588,7 +588,8 @@ def test_the_plan_over_many_small_files_does_not_grow_with_their_number(tmp_path
     from zoneinfo import ZoneInfo
 
     from runner.core.windows import Window
-    from runner.io.readers import InputStats, file_frame, find_files
+    from runner.io.inspect import InputStats
+    from runner.io.readers import file_frame, find_files
     from runner.model.spec import FileInput
 
     source = FileInput.model_validate({"files": f"{LANDING}/*.csv", "schema": {"ride_id": "str", "amount": "float"},

@@ -36,7 +36,8 @@ from hypothesis import strategies as st
 
 from runner.core.windows import Window
 from runner.io import inputfiles
-from runner.io.readers import InputStats, file_frame, find_files
+from runner.io.inspect import InputStats
+from runner.io.readers import file_frame, find_files
 from runner.model.spec import FileInput
 
 HEADER = ["ride_id", "zone", "note"]

@@ -53,9 +53,9 @@ def _verify_output(ws: Workspace, job: str, row: dict[str, Any]) -> tuple[str | 
     import sqlalchemy as sa
 
     from runner.core.paths import database_url
+    from runner.io.databases import table_rows
     from runner.io.files import file_sha256
     from runner.io.outputs import read_table_digest
-    from runner.io.readers import table_rows
 
     out = ws.jobs[job].spec.output
     if out.path is not None:

@@ -227,7 +227,8 @@ def run_attempt(ctx: RunContext, attempt: Attempt,
     supervisor can renew it and record a failure if this process dies. On a
     failure that will be retried, the claim stays held; otherwise it is released.
     """
-    from runner.io.readers import InputStats, database_frame
+    from runner.io.databases import database_frame
+    from runner.io.inspect import InputStats
 
     ws = ctx.ws
     job, force = attempt.job, attempt.force
@@ -425,14 +426,15 @@ def _producer_frame(ws: Workspace, source: JobInput, producers: list[Producer], 
     import polars as pl
 
     from runner.core.sqlcheck import declared_schema
-    from runner.io.readers import output_frame, table_rows
+    from runner.io.databases import table_rows
+    from runner.io.readers import output_frame
 
     empty = declared_schema(source.columns) or ws.output_schemas.get(source.job)
     out = ws.jobs[source.job].spec.output
     if out.path is not None:
         paths = [str(ws.root / p.state["output"]) for p in producers if p.state and p.state.get("output")]
         if not paths and empty is None:
-            from runner.io.readers import InputError
+            from runner.io.inputfiles import InputError
 
             raise InputError(f"input from job {source.job} is empty here and its columns are unknown; "
                              "declare them with schema: under this input")
@@ -463,7 +465,7 @@ def _previous_output(ctx: RunContext, job: str, window: Window) -> Any:
         return None
     import polars as pl
 
-    from runner.io.readers import table_rows
+    from runner.io.databases import table_rows
 
     if out.path is not None:
         path = ctx.ws.root / state["output"]

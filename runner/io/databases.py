@@ -12,12 +12,19 @@ from __future__ import annotations
 
 import os
 from collections.abc import Iterable
+from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import sqlalchemy as sa
 
+from runner.core.paths import database_url
+
 if TYPE_CHECKING:
     import polars as pl
+
+    from runner.core.windows import Window
+    from runner.io.inspect import InputStats
+    from runner.model.spec import DatabaseInput
 
 READ = {"weir_read": True}  # execution options of a transaction that only reads (plain BEGIN)
 
@@ -73,3 +80,100 @@ def _pragmas(dbapi_conn: Any, _record: Any) -> None:
 def _begin(conn: sa.Connection) -> None:
     read = conn.get_execution_options().get("weir_read", False)
     conn.exec_driver_sql("BEGIN" if read else "BEGIN IMMEDIATE")
+
+
+def table_rows(url: str, table: str, keys: list[str]) -> pl.DataFrame:
+    """Rows of a table output for the given window keys (column window_start)."""
+    import sqlalchemy as sa
+
+    engine = sa.create_engine(url)
+    try:
+        tbl = sa.Table(table, sa.MetaData(), autoload_with=engine)
+        with engine.connect() as conn:
+            result = conn.execute(sa.select(tbl).where(tbl.c.window_start.in_(keys)))
+            cols = list(result.keys())
+            rows = result.fetchall()
+    finally:
+        engine.dispose()
+    frame = rows_frame(rows, cols)
+    return frame.drop("window_start")
+
+
+def database_frame(root: Path, name: str, source: DatabaseInput, window: Window, job_tz: str,
+                   stats: InputStats) -> tuple[pl.LazyFrame, dict[str, Any]]:
+    """Read the window's rows of a table or query; returns the frame and its manifest entry.
+
+    The window restriction uses bound parameters (`:window_start`, `:window_end`,
+    naive UTC datetimes), never string formatting.
+    """
+    import polars as pl
+    import sqlalchemy as sa
+
+    from runner.core.fingerprints import frame_digest
+    from runner.io.inputfiles import InputError
+    from runner.io.inspect import (
+        COPIES,
+        FILE,
+        ROW,
+        BatchInspector,
+        key_frame,
+        key_problem,
+        repeated_keys,
+    )
+    from runner.io.readers import declared_columns
+
+    url = database_url(root, source.database)
+    params = {"window_start": window.start.replace(tzinfo=None), "window_end": window.end.replace(tzinfo=None)}
+    try:
+        engine = sa.create_engine(url)
+    except Exception as exc:  # noqa: BLE001 - any driver error is the user's URL
+        raise InputError(f"input {name}: cannot open {masked(url)}: {exc}") from None
+    try:
+        with engine.connect() as conn:
+            if source.table is not None:
+                tbl = sa.Table(source.table, sa.MetaData(), autoload_with=conn)
+                stmt = sa.select(tbl)
+                if source.time_column:
+                    col = tbl.c[source.time_column]
+                    stmt = stmt.where(col >= sa.bindparam("window_start"), col < sa.bindparam("window_end"))
+            else:
+                inner = sa.text(source.query)
+                if source.time_column:
+                    sub = inner.columns().subquery("q")
+                    col = sa.column(source.time_column)
+                    stmt = sa.select(sa.text("*")).select_from(sub).where(
+                        col >= sa.bindparam("window_start"), col < sa.bindparam("window_end"))
+                else:
+                    stmt = inner
+            wanted = {k: v for k, v in params.items() if k in str(stmt)}
+            result = conn.execute(stmt, wanted)
+            cols = list(result.keys())
+            rows = result.fetchall()
+    except sa.exc.SQLAlchemyError as exc:
+        raise InputError(f"input {name}: query failed on {masked(url)}: {str(exc).splitlines()[0]}") from None
+    finally:
+        engine.dispose()
+    frame = rows_frame(rows, cols)
+    entry = {"input": name, "path": f"{masked(url)} {source.table or 'query'}", "rows": frame.height,
+             "digest": frame_digest(frame)}
+    columns = declared_columns(source)
+    key = list(source.key or [])
+    if columns or key:
+        missing = [c for c in dict.fromkeys([*columns, *key]) if c not in frame.columns]
+        if missing:
+            raise InputError(f"input {name}: the query returns no column(s) {', '.join(missing)}")
+        label = f"{masked(url)} {source.table or 'query'}"
+        rows = frame.with_row_index(ROW).with_columns(pl.lit(0, dtype=pl.UInt32).alias(FILE))
+        repeats = None
+        if key:
+            repeats = repeated_keys([key_frame(rows.lazy(), key, columns, rows.schema, source.time_column,
+                                               window, job_tz)], len(key))
+            if repeats.height:
+                stats.tally(name, 0, 0, int(repeats[COPIES].sum()) - repeats.height)
+                raise key_problem(name, key, repeats, [label])
+        inspector = BatchInspector(name, [label], source, columns, rows.schema, window, job_tz, stats, repeats)
+        frame = inspector(inspector.stage(rows.lazy()).collect())
+        stats.counted = True
+    else:
+        stats.tally(name, frame.height, 0, 0)
+    return frame.lazy(), entry
