@@ -266,17 +266,17 @@ def run_here(root: Path, job_name: str, days: list[str], force: bool = False) ->
 def test_a_file_is_examined_once_per_process_whatever_reads_it(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
     """Hardening item 7 (brief): a file's bad rows are found once per run, not once per consumer:
     a lookup file read by both daily windows is examined once."""
-    from runner.io import inputfiles
+    from runner.io import inputfiles, records
     data = HEADER + b"\n".join(ROWS) + b"\nR0000005,2026-03-22T10:13:00Z\n"
     root = workspace(tmp_path, job(files=f"{LANDING}/lookup.csv"), {"lookup.csv": data})
     examined: list[int] = []
-    real_scan = inputfiles._Scan.run
+    real_scan = records.Scan.run
 
     def counted(self: Any) -> Any:
         examined.append(1)
         return real_scan(self)
 
-    monkeypatch.setattr(inputfiles._Scan, "run", counted)
+    monkeypatch.setattr(records.Scan, "run", counted)
     inputfiles._CACHE.items.clear()
     assert run_here(root, "rides_in", ["2026-03-22", "2026-03-23"]) == ["done", "done"]
     assert len(examined) == 1

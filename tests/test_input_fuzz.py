@@ -35,7 +35,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from runner.core.windows import Window
-from runner.io import inputfiles
+from runner.io import inputfiles, records
 from runner.io.inspect import InputStats
 from runner.io.readers import file_frame, find_files
 from runner.model.spec import FileInput
@@ -158,8 +158,8 @@ def test_every_row_reaches_the_output_as_the_csv_module_reads_it_or_is_a_located
         source = FileInput.model_validate(spec)
         good = sorted((tuple(v if v != "" else None for v in e) for e in expected if e), key=repr)
         bad = {i for i, e in enumerate(expected, start=1) if e is None}
-        for small, chunk in ((inputfiles.SMALL, inputfiles.CHUNK), (0, 7)):
-            with mock.patch.multiple(inputfiles, SMALL=small, CHUNK=chunk):
+        for small, chunk in ((records.SMALL, records.CHUNK), (0, 7)):
+            with mock.patch.multiple(records, SMALL=small, CHUNK=chunk):
                 frame, rejected = _read(root, source)
             if schema:
                 got = [tuple(v if v != "" else None for v in r) for r in frame.select(HEADER).rows()]

@@ -136,7 +136,8 @@ def _ndjson(name: str, read: FileRead, text_columns: list[str], row_index: bool)
 def _unreadable(name: str, read: FileRead, exc: Exception) -> InputError:
     """The error for a file polars cannot read, naming it (and, for NDJSON, the line Python's json
     module cannot read)."""
-    from runner.io.inputfiles import EAGER, json_problem
+    from runner.io.inputfiles import EAGER
+    from runner.io.records import json_problem
 
     if read.fmt == "ndjson" and read.size <= EAGER:
         found = json_problem(bytes(read.text()))
@@ -199,7 +200,7 @@ def file_frames(name: str, reads: list[FileRead], text_columns: dict[int, list[s
                 ) -> list[pl.LazyFrame]:
     """Lazy frames over the prepared files of one input: small CSV files sharing a header
     together, every other file on its own."""
-    from runner.io.inputfiles import SMALL
+    from runner.io.records import SMALL
 
     frames = []
     together: dict[tuple[tuple[str, ...], tuple[str, ...]], list[int]] = {}
@@ -218,7 +219,7 @@ def judge_records(name: str, source: FileInput, read: FileRead, stats: InputStat
     `max_bad_rows`); the rows of an input without declared columns are counted here too."""
     import polars as pl
 
-    from runner.io.inputfiles import reason_text
+    from runner.io.records import reason_text
 
     found = read.shape
     if found is None:
