@@ -229,8 +229,9 @@ def run(root: Root, *, job: str, window: str, ledger: str | None = None, force: 
         at: datetime | None = None) -> Outcome:
     """Run one window of `job` (skipped when current unless `force`) in a worker process."""
     from runner.core.planner import Task
+    from runner.engine.context import RunContext
     from runner.engine.pool import run_tasks, warm_up
-    from runner.engine.window import Outcome, RunContext
+    from runner.engine.window import Outcome
     from runner.io.outputs import sweep_temporaries
     from runner.model.timeutil import format_instant
 
@@ -312,8 +313,8 @@ def backfill(root: Root, *, jobs: list[str], lo: str | None = None, hi: str | No
     warn or confirm; False stops it); `on_outcome(task, outcome)` after each window.
     """
     from runner.engine.backfill import existing_outputs
+    from runner.engine.context import RunContext
     from runner.engine.pool import default_workers, run_tasks, warm_up
-    from runner.engine.window import RunContext
     from runner.io.outputs import sweep_temporaries
 
     warm_up()

@@ -255,7 +255,8 @@ def run_here(root: Path, job_name: str, days: list[str], force: bool = False) ->
     """Run windows in this process, one after the other as one worker process runs them (weir's own runs
     happen in worker processes, out of reach of a test's monkeypatching); their statuses."""
     from runner import api
-    from runner.engine.window import Attempt, RunContext, run_attempt
+    from runner.engine.context import RunContext
+    from runner.engine.window import Attempt, run_attempt
 
     ws = api.workspace(root)
     ctx = RunContext(ws=ws, ledger=api.open_ledger(root))

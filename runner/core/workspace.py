@@ -12,6 +12,7 @@ from dataclasses import dataclass, field
 from datetime import timedelta
 from functools import cached_property
 from pathlib import Path
+from typing import Any
 
 from runner.core import graph as graphs
 from runner.core.graph import upstream_windows
@@ -33,6 +34,7 @@ class Workspace:
     warnings: list[Problem] = field(default_factory=list)
     resolved_schemas: dict | None = None
     settings: WorkspaceSettings = field(default_factory=WorkspaceSettings)
+    memo: dict[str, Any] = field(default_factory=dict, repr=False, compare=False)  # values computed once per load
 
     def time_allowed(self, name: str) -> timedelta:
         """How long one attempt at a window of `name` may run: the job's own limit, else the workspace's."""

@@ -31,8 +31,9 @@ def explain_window(ws: Workspace, ledger: Ledger, job: str, window: Window, at: 
 
     from runner.core import explain
     from runner.core.assessment import parse_run_time
+    from runner.engine.context import RunContext
+    from runner.engine.prepare import prepare, spec_and_code
     from runner.engine.survey import survey
-    from runner.engine.window import RunContext, prepare, spec_and_code
 
     cad = ws.cadence(job)
     out: dict[str, Any] = {"job": job, "window": window.id, "window_utc": window.key,

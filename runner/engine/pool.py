@@ -41,15 +41,8 @@ from multiprocessing.connection import Connection, wait
 from typing import Any
 
 from runner.core.planner import Task
-from runner.engine.window import (
-    LOST,
-    Attempt,
-    Outcome,
-    RunContext,
-    precheck,
-    record_failure,
-    run_attempt,
-)
+from runner.engine.context import RunContext
+from runner.engine.window import LOST, Attempt, Outcome, precheck, record_failure, run_attempt
 from runner.io.ledger.leases import Leases
 from runner.model.timeutil import short_duration
 

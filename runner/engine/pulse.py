@@ -57,9 +57,9 @@ def tick(ws: Workspace, at: datetime, *, ledger_url: str | None = None, workers:
     from runner.core.planner import job_plans, tasks_for
     from runner.core.workspace import producer_windows
     from runner.engine import gate
+    from runner.engine.context import RunContext
     from runner.engine.pool import run_tasks
     from runner.engine.survey import survey
-    from runner.engine.window import RunContext
     from runner.io.ledger.leases import HeldLock
     from runner.io.ledger.owners import owner_id
     from runner.io.ledger.store import open_ledger

@@ -17,7 +17,7 @@ from runner.core import fingerprints as fp
 from runner.core.assessment import Probe, Snapshot, assess
 from runner.core.windows import Window
 from runner.core.workspace import Workspace
-from runner.engine.window import spec_and_code
+from runner.engine.prepare import spec_and_code
 from runner.io.files import FileIndex
 from runner.io.ledger.store import Ledger
 from runner.model.spec import DatabaseInput, FileInput

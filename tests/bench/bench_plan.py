@@ -85,8 +85,8 @@ def build(root: Path) -> None:
     from runner.core import fingerprints as fp
     from runner.core.windows import Window
     from runner.engine.loading import load_workspace
+    from runner.engine.prepare import spec_and_code
     from runner.engine.survey import InputProber
-    from runner.engine.window import spec_and_code
     from runner.io.ledger.schema import runs, texts, windows
     from runner.io.ledger.store import Ledger, default_url
     from runner.model.timeutil import format_instant

@@ -47,7 +47,7 @@ from runner.core import fingerprints as fp  # noqa: E402
 from runner.core.assessment import Snapshot, assess_job  # noqa: E402
 from runner.core.planner import _upstream  # noqa: E402
 from runner.engine.loading import load_workspace  # noqa: E402
-from runner.engine.window import spec_and_code  # noqa: E402
+from runner.engine.prepare import spec_and_code  # noqa: E402
 from runner.io.ledger import schema as ledger_schema  # noqa: E402
 from runner.io.ledger import store as ledger_mod  # noqa: E402
 from runner.report import build_report, write_report  # noqa: E402
