@@ -13,6 +13,9 @@ The work itself happens in `runner.engine` (and `runner.scaffold` for the
 demo and new workspaces); this module loads the workspace, opens the ledger
 and shapes the answers. Nothing heavy is imported until a function runs, so
 that the idle tick stays quick.
+
+One module because it is the public surface: one function per command with
+its result type beside it, read top to bottom as the list of what weir does.
 """
 
 from __future__ import annotations
@@ -230,8 +233,9 @@ def run(root: Root, *, job: str, window: str, ledger: str | None = None, force: 
     """Run one window of `job` (skipped when current unless `force`) in a worker process."""
     from runner.core.planner import Task
     from runner.engine.context import RunContext
-    from runner.engine.pool import run_tasks, warm_up
+    from runner.engine.pool import run_tasks
     from runner.engine.window import Outcome
+    from runner.engine.workers import warm_up
     from runner.io.outputs import sweep_temporaries
     from runner.model.timeutil import format_instant
 
@@ -314,7 +318,8 @@ def backfill(root: Root, *, jobs: list[str], lo: str | None = None, hi: str | No
     """
     from runner.engine.backfill import existing_outputs
     from runner.engine.context import RunContext
-    from runner.engine.pool import default_workers, run_tasks, warm_up
+    from runner.engine.pool import default_workers, run_tasks
+    from runner.engine.workers import warm_up
     from runner.io.outputs import sweep_temporaries
 
     warm_up()

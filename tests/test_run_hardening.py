@@ -224,7 +224,7 @@ def test_the_fork_server_of_workers_never_loads_polars():
     (a process must not fork once polars has started its threads)."""
     import sys
 
-    script = ("import importlib, sys; from runner.engine.pool import PRELOAD; "
+    script = ("import importlib, sys; from runner.engine.workers import PRELOAD; "
               "[importlib.import_module(m) for m in PRELOAD]; print(sorted(m for m in sys.modules if m == 'polars'))")
     out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=BOUND, check=True)
     assert out.stdout.strip() == "[]"

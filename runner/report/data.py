@@ -10,6 +10,10 @@ so the page never calls a window done whose inputs changed long ago.
 
 States are shown under weir's names: `STATE_NAMES` is the one table from the
 planner's values to the words the page and the metrics use.
+
+One module because the page's data model (`ReportData`, `JobView`) and the
+functions that fill it are read together: each shaping function fills one
+part of a `JobView`, in the order the page shows them.
 """
 
 from __future__ import annotations
