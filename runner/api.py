@@ -24,7 +24,7 @@ from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from datetime import datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, cast
 
 from runner.errors import UsageError
 
@@ -539,10 +539,10 @@ def impact(root: Root, *, at: datetime, ledger: str | None = None, workers: int 
             for r in reasons:
                 by_reason[r] = by_reason.get(r, 0) + 1
         stats = book.run_stats(job).filter(pl.col("status") == "done")
-        median = stats["seconds"].median() if stats.height else None
+        median = cast(float, stats["seconds"].median()) if stats.height else None
         count = stale_rows.height
         out.append(JobImpact(job, count, by_reason, int(stale_rows["pending"].sum()) if count else 0, median,
-                             (median * count / workers) if median is not None else None))  # type: ignore[operator]
+                             (median * count / workers) if median is not None else None))
     out.extend(JobImpact(job, 0, {}, 0, None, None, why) for job, why in assessed.unplanned.items())
     return out
 

@@ -51,12 +51,6 @@ class LedgerError(WeirError):
     """The ledger cannot be used (newer schema, locked, corrupt)."""
 
 
-class RunFailed(WeirError):
-    """At least one window failed; the details are in the ledger and logs."""
-
-    exit_code = 1
-
-
 class Interrupted(BaseException):
     """A signal (SIGINT from Ctrl-C, SIGTERM) stopped a running command; the CLI exits with 128 + it."""
 

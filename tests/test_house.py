@@ -31,6 +31,13 @@ def test_imports_keep_the_layers_and_have_no_cycle():
     assert "0 broken" in proc.stdout
 
 
+def test_the_package_type_checks_clean_with_mypy():
+    proc = subprocess.run([sys.executable, "-m", "mypy", "--no-incremental"], cwd=ROOT, capture_output=True,
+                          text=True, timeout=900)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert proc.stdout.startswith("Success: no issues found")
+
+
 def test_every_module_past_500_lines_says_why_in_its_docstring():
     long = []
     for path in sorted((ROOT / "runner").rglob("*.py")):

@@ -640,7 +640,7 @@ def _ledger(root: Path):
 
 
 def _this_process() -> str:
-    from runner.io.ledger.owners import owner_id
+    from runner.io.owners import owner_id
 
     return owner_id()
 
@@ -670,7 +670,7 @@ def test_expired_claim_is_taken_over(rides_ws: Path):
 
 def test_claim_of_an_ended_process_on_this_host_is_taken_over_before_it_expires(rides_ws: Path):
     # a real process takes the claim in its own name and ends without releasing it
-    script = ("import sys; from runner.io.ledger.store import Ledger; from runner.io.ledger.owners import owner_id; "
+    script = ("import sys; from runner.io.ledger.store import Ledger; from runner.io.owners import owner_id; "
               "sys.exit(0 if Ledger(sys.argv[1]).claim('rides_hourly', sys.argv[2], owner_id(), 3600) else 1)")
     subprocess.run([sys.executable, "-c", script, f"sqlite:///{ledger_path(rides_ws)}", window_key(DAY, 4)],
                    check=True, timeout=60)

@@ -15,8 +15,8 @@ class Progress:
     def __init__(self, tty: bool, quiet: bool = False):
         self.tty, self.quiet = tty, quiet
         self.counts = {"done": 0, "failed": 0, "skipped": 0, "waiting": 0}
-        self.bar = None
-        self.task = None
+        self.bar: Any = None  # a rich Progress once started
+        self.task: Any = None
 
     def start(self, total: int) -> None:
         if self.quiet or not self.tty:

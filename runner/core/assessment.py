@@ -8,7 +8,7 @@ frame per job, one row per window. What to run from it: `runner.core.planner`.
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from typing import TYPE_CHECKING, Any
@@ -29,7 +29,7 @@ STATES = ("done", "stale", "failed", "running", "waiting", "missing")
 class Snapshot:
     """The ledger, read once: window state rows per job and the live claims."""
 
-    states: dict[str, Any]
+    states: Mapping[str, Any]  # job -> its state rows (read ahead, so a mapping that may wait)
     claims: set[tuple[str, str]] = field(default_factory=set)
 
 
@@ -65,8 +65,8 @@ def _pairs(consumer: pl.DataFrame, ccad: Cadence, pcad: Cadence, source: JobInpu
     empty = pl.DataFrame(schema={"window_key": pl.String, "producer_key": pl.String, "producer_end_us": pl.Int64})
     if frame.height == 0:
         return empty
-    first = pcad.window_at(from_us(int(frame["lo"].min())))
-    pspan = pcad.span(first.start if first is not None else pcad.start, from_us(int(frame["hi"].max())))
+    first = pcad.window_at(from_us(frame.select(pl.col("lo").min()).item()))
+    pspan = pcad.span(first.start if first is not None else pcad.start, from_us(frame.select(pl.col("hi").max()).item()))
     if len(pspan) == 0:
         return empty
     pends, pstarts = pspan.ends_us, pspan.starts_us
@@ -118,11 +118,11 @@ def _upstream(ws: Workspace, job: str, frame: pl.DataFrame, snapshot: Snapshot,
     # the exact canonical JSON that fingerprint.upstream_part hashes
     digest_json = pl.when(pl.col("p_digest").is_null()).then(pl.lit("null")).otherwise(
         pl.lit('"') + pl.col("p_digest") + pl.lit('"'))
-    pairs = pl.concat(parts).with_columns((
+    linked = pl.concat(parts).with_columns((
         pl.lit('{"digest":') + digest_json + pl.lit(',"input":"') + pl.col("input") + pl.lit('","job":"')
         + pl.col("job") + pl.lit('","window":"') + pl.col("producer_key") + pl.lit('"}')).alias("entry"))
-    pairs = pairs.sort("window_key", "input", "job", "producer_key")
-    grouped = pairs.group_by("window_key", maintain_order=True).agg(
+    linked = linked.sort("window_key", "input", "job", "producer_key")
+    grouped = linked.group_by("window_key", maintain_order=True).agg(
         pl.col("entry").str.join(",").alias("text"),
         (pl.col("p_state") == "done").fill_null(False).all().alias("up_ready"),
         pl.col("p_current").all().alias("up_current"),
@@ -211,7 +211,7 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, probe:
             pl.Series([k for j, k in snapshot.claims if j == job], dtype=pl.String).implode()))
         .alias("running"),
     )
-    frame = frame.lazy()  # from here on one query, collected once at the end
+    query = frame.lazy()  # from here on one query, collected once at the end
     done = pl.col("state") == "done"
     changed = [
         pl.when(done & ~pl.col("spec_ok")).then(pl.lit("spec")),
@@ -221,16 +221,16 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, probe:
         pl.when(done & (pl.col("fp_upstream") != pl.col("up_hash")) & pl.col("up_ready")).then(pl.lit("upstream")),
         pl.when(done & pl.col("output_state").is_not_null()).then(pl.lit("output")),
     ]
-    frame = frame.with_columns(pl.concat_list(changed).list.drop_nulls().alias("reasons"))
+    query = query.with_columns(pl.concat_list(changed).list.drop_nulls().alias("reasons"))
     self_chain = any(isinstance(s, JobInput) and s.job == job for s in spec.inputs.values())
-    frame = frame.with_columns((~pl.col("up_current")).alias("pending"))
+    query = query.with_columns((~pl.col("up_current")).alias("pending"))
     if self_chain:
         not_current = (pl.col("state") != "done") | pl.col("state").is_null() | (pl.col("reasons").list.len() > 0)
-        frame = frame.with_columns(
+        query = query.with_columns(
             (pl.col("pending") | not_current.cast(pl.Int8).cum_max().shift(1, fill_value=0).cast(pl.Boolean))
             .alias("pending"))
     # a done window whose producers are not current is stale by upstream, pending their re-run
-    frame = frame.with_columns(
+    query = query.with_columns(
         pl.when(done & pl.col("pending") & ~pl.col("reasons").list.contains("upstream"))
         .then(pl.concat_list("reasons", pl.lit(["upstream"])))
         .otherwise(pl.col("reasons")).alias("reasons"))
@@ -241,7 +241,7 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, probe:
     retry_at = (pl.col("finished_at").str.to_datetime("%Y-%m-%dT%H:%M:%S%.fZ", time_unit="us", time_zone="UTC",
                                                       strict=False)
                 + pl.duration(microseconds=pl.lit(delay_us, dtype=pl.Int64) * pl.lit(2, dtype=pl.Int64).pow(power)))
-    frame = frame.with_columns(
+    query = query.with_columns(
         pl.when(pl.col("failures") > 0).then(retry_at).alias("_retry_at"),
     ).with_columns(pl.col("_retry_at").dt.strftime("%Y-%m-%dT%H:%M:%S%.6fZ").alias("retry_at"))
     late_after = spec.late_after
@@ -250,10 +250,10 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, probe:
         ingested_us = pl.col("ingested_at").str.to_datetime("%Y-%m-%dT%H:%M:%S%.fZ", time_zone="UTC",
                                                             strict=False).dt.epoch("us")
         newest_us = pl.col("in_newest") // 1000
-        frame = frame.with_columns(
+        query = query.with_columns(
             ((pl.coalesce(newest_us, ingested_us) - pl.col("end_us")) > late_us).fill_null(False).alias("late"))
     else:
-        frame = frame.with_columns(pl.lit(False).alias("late"))
+        query = query.with_columns(pl.lit(False).alias("late"))
     state = (
         pl.when(pl.col("running")).then(pl.lit("running"))
         .when(pl.col("state").is_null() & (pl.col("in_waiting").is_not_null() | ~pl.col("up_ready")))
@@ -263,14 +263,14 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, probe:
         .when(pl.col("reasons").list.len() > 0).then(pl.lit("stale"))
         .otherwise(pl.lit("done"))
     )
-    frame = frame.with_columns(state.alias("state_now"))
+    query = query.with_columns(state.alias("state_now"))
     retry_left = pl.col("failures") <= retries
     backoff_ok = pl.col("_retry_at").is_null() | (pl.col("_retry_at") <= pl.lit(at))
     failed_due = (pl.col("state_now") == "failed") & pl.col("in_waiting").is_null() & pl.col("up_ready") & (
         retry_left & backoff_ok)
     due = (pl.col("state_now") == "missing") | failed_due | (
         (pl.col("state_now") == "stale") & pl.col("up_ready") & ~pl.col("pending"))
-    frame = frame.with_columns(due.alias("due"))
+    query = query.with_columns(due.alias("due"))
     reason = (
         pl.when(pl.col("state_now") == "running").then(pl.lit("running in another process"))
         .when(pl.col("state_now") == "waiting").then(pl.coalesce("in_waiting", "up_waiting"))
@@ -287,8 +287,8 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, probe:
               .otherwise(pl.lit("")))
         .otherwise(pl.lit(""))
     )
-    frame = frame.with_columns(reason.alias("reason"))
-    return frame.select(
+    query = query.with_columns(reason.alias("reason"))
+    return query.select(
         "window", "window_key", "start_us", "end_us", pl.col("state_now").alias("state"), "reasons", "pending",
         "due", "late", "failures", "seconds", "ingested_at", "reason", "output", "output_digest", "run_id",
         "in_newest", pl.when((pl.col("state_now") == "failed") & retry_left).then(pl.col("retry_at"))

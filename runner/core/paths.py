@@ -92,6 +92,7 @@ def render_many(template: str, starts_us: Any, ends_us: Any, tz: str, once: bool
         if literal:
             parts.append(pl.lit(literal.replace("{{", "{").replace("}}", "}")))
         if f is not None:
+            assert spec, "a placeholder without a format is refused when the job file is read"
             parts.append(pl.col(f).dt.strftime(spec))
     return frame.select(pl.concat_str(parts).alias("pattern")).to_series()
 

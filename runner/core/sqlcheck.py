@@ -49,8 +49,6 @@ _IO_FUNCTION = re.compile(
 )
 _RELATION = re.compile(r"relation '([^']+)' was not found")
 
-BOUNDS_SCHEMA = {"window_start": ("datetime", "UTC"), "window_end": ("datetime", "UTC")}
-STAMP_COLUMNS = ("window_start", "window_end", "run_id", "code_version")
 
 
 @dataclass

@@ -54,10 +54,11 @@ def graph_problems(jobs: Mapping[str, Job], graph: nx.DiGraph | None = None,
     for cycle in cycles:
         path = " -> ".join([*cycle, cycle[0]])
         first, second = cycle[0], cycle[1] if len(cycle) > 1 else cycle[0]
-        input_name = graph.edges[first, second]["inputs"][0] if graph.has_edge(first, second) else None
+        assert graph is not None  # built above when there is a cycle
+        reader: str | None = graph.edges[first, second]["inputs"][0] if graph.has_edge(first, second) else None
         consumer = jobs[second]
-        where = ("inputs", input_name, "job") if input_name else ()
-        problems.append(consumer.problem(where, f"cycle {path}: jobs cannot read each other in a loop"))
+        at: tuple[str, ...] = ("inputs", reader, "job") if reader else ()
+        problems.append(consumer.problem(at, f"cycle {path}: jobs cannot read each other in a loop"))
     problems.extend(output_problems(jobs, root))
     return problems
 

@@ -252,7 +252,7 @@ class Cadence:
         if kind == "fixed":
             step = self.count * _FIXED_UNITS[self.unit]
             k = (t - to_us(self.start)) // step
-            window = self._fixed_window(k)
+            window: Window | None = self._fixed_window(k)
         elif kind == "calendar":
             k = self._calendar_index(instant)
             if k < 0:
@@ -400,9 +400,10 @@ class Cadence:
     def _cron_iter(self, after: datetime) -> Any:
         from croniter import croniter
 
+        assert self.cron is not None  # only cron cadences get here
         return _CronFires(croniter(self.cron, after.astimezone(self.tz)), self.cron, self.tz)
 
-    def _cron_next(self, instant: datetime, inclusive: bool) -> datetime | None:
+    def _cron_next(self, instant: datetime, inclusive: bool) -> datetime:
         probe = instant - timedelta(seconds=1) if inclusive else instant
         fire = self._cron_iter(probe).get_next(datetime)
         return fire.astimezone(UTC)

@@ -108,10 +108,6 @@ class Workspace:
         wanted = set(names)
         return [n for n in self.order if n in wanted]
 
-    @property
-    def state_dir(self) -> Path:
-        return self.root / "state"
-
     def path(self, relative: str | os.PathLike[str]) -> Path:
         return self.root / relative
 

@@ -5,8 +5,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 from runner.core.workspace import Workspace
-from runner.io.ledger.owners import owner_id
 from runner.io.ledger.store import Ledger
+from runner.io.owners import owner_id
 
 
 @dataclass

@@ -26,7 +26,7 @@ from pathlib import Path
 from typing import Any
 
 from runner.core.paths import LEDGER, TICK_GATE
-from runner.io.files import stat_files, wildcard
+from runner.io.files import stat_files, wildcard, write_atomic
 
 GATE = Path(TICK_GATE)
 
@@ -135,13 +135,8 @@ def write(root: Path, ledger_url: str | None, templates: list[str], modules: lis
         "written_at": datetime.now(UTC).isoformat(),
     }
     record["observed"] = _with_ledger(files, ledger_file)
-    path = root / GATE
-    tmp = path.with_name(f".{path.name}.{os.getpid()}")
-    try:
-        tmp.write_text(json.dumps(record, indent=1))
-        os.replace(tmp, path)
-    except OSError:
-        pass
+    with contextlib.suppress(OSError):
+        write_atomic(root / GATE, json.dumps(record, indent=1))
 
 
 def clear(root: Path) -> None:

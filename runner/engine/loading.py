@@ -74,7 +74,7 @@ def load_workspace(root: Path | str = ".", resolve_sql: bool = True, thorough: b
     schemas: dict | None = {} if thorough and resolve_sql else None
     # Every problem of a run is reported together; SQL is resolved in dependency
     # order, which needs a graph without cycles (cycles are reported above).
-    if thorough and resolve_sql and acyclic(jobs):
+    if schemas is not None and acyclic(jobs):
         for p in sql_problems(jobs, schemas):
             (warnings if p.severity == "warning" else problems).append(p)
     if problems:

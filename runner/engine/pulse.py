@@ -61,9 +61,9 @@ def tick(ws: Workspace, at: datetime, *, ledger_url: str | None = None, workers:
     from runner.engine.pool import run_tasks
     from runner.engine.survey import survey
     from runner.io.ledger.leases import HeldLock
-    from runner.io.ledger.owners import owner_id
     from runner.io.ledger.store import open_ledger
     from runner.io.outputs import sweep_temporaries
+    from runner.io.owners import owner_id
 
     watch = _gate_watch(ws)
     # what the gate watches, seen before planning: a change while the tick plans must not be absorbed

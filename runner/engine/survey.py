@@ -11,10 +11,10 @@ from collections.abc import Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from datetime import datetime
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from runner.core import fingerprints as fp
-from runner.core.assessment import Probe, Snapshot, assess
+from runner.core.assessment import Assessment, Probe, Snapshot, assess
 from runner.core.windows import Window
 from runner.core.workspace import Workspace
 from runner.engine.prepare import spec_and_code
@@ -22,8 +22,11 @@ from runner.io.files import FileIndex
 from runner.io.ledger.store import Ledger
 from runner.model.spec import DatabaseInput, FileInput
 
+if TYPE_CHECKING:
+    import polars as pl
 
-class _Arriving(Mapping):
+
+class _Arriving(Mapping[str, Any]):
     """Job -> state frame, each read by a background thread in dependency order.
 
     The planner asks for jobs in that same order, so while it assesses one job
@@ -108,7 +111,7 @@ class InputProber:
                 waiting = f"input {name}: no files match {', '.join(found.patterns[:2])}"
         return Probe(None if tables else fp.input_part(entries).hash, newest, waiting)
 
-    def many(self, job: str, tz: Any, starts_us: list[int], ends_us: list[int]) -> list[Probe]:
+    def many(self, job: str, tz: Any, starts_us: list[int], ends_us: list[int]) -> list[Probe] | pl.DataFrame:
         """Probes for many windows of one job (given as UTC epoch microseconds): each distinct
         set of rendered patterns is looked up once."""
         import polars as pl
@@ -171,7 +174,7 @@ def closure(ws: Workspace, jobs: list[str]) -> list[str]:
 
 
 def survey(ws: Workspace, ledger: Ledger, at: datetime, jobs: list[str] | None = None,
-           recheck_all: bool = False, extras: bool = False) -> dict[str, Any]:
+           recheck_all: bool = False, extras: bool = False) -> Assessment:
     """Assessed frames of `jobs` (all when empty), reading the ledger and inputs once.
 
     `extras` also brings each window's run id, output, digest and duration (for the report).

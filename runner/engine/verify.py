@@ -67,6 +67,7 @@ def _verify_output(ws: Workspace, job: str, row: dict[str, Any]) -> tuple[str | 
         except OSError as exc:
             return "unreadable", exc.strerror or str(exc)
         return (None if same else "changed"), None
+    assert out.database is not None and out.table is not None  # a table output
     url = database_url(ws.root, out.database)
     try:
         digest = read_table_digest(url, out.table, row["window_key"])

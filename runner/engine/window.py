@@ -264,6 +264,7 @@ def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: 
         stats.check_fractions()
         check_output(frame.lazy(), list(out.checks), previous, output=f"table {out.table}")
         _confirm(ctx, job, window, fence)  # fencing: only the claim's holder replaces the rows
+        assert out.database is not None and out.table is not None  # a table output
         rows, digest = sinks.write_table(database_url(ws.root, out.database), out.table, frame, window.key)
         location, checksum = f"table {out.table}", None
     finished = {
@@ -336,6 +337,7 @@ def _producer_frame(ws: Workspace, source: JobInput, producers: list[Producer], 
                 stats.counted = True
         return frame
     keys = [p.window.key for p in producers]
+    assert out.database is not None and out.table is not None  # a table output
     rows = table_rows(database_url(ws.root, out.database), out.table, keys) if keys else None
     if rows is None or (rows.height == 0 and empty is not None and not rows.columns):
         return pl.LazyFrame(schema=dict(empty) if empty is not None else {})
@@ -362,6 +364,7 @@ def _previous_output(ctx: RunContext, job: str, window: Window) -> Any:
         if not path.exists():
             return None
         return pl.scan_parquet(path) if out.file_format == "parquet" else pl.scan_csv(path)
+    assert out.database is not None and out.table is not None  # a table output
     return table_rows(database_url(ctx.ws.root, out.database), out.table, [earlier.key]).lazy()
 
 
@@ -479,6 +482,7 @@ def _intact_and_current(ctx: RunContext, job: str, window: Window, fingerprint: 
         if out.path is not None:
             return bool(state["output_checksum"]) and file_sha256(ctx.ws.root / state["output"]) == state[
                 "output_checksum"]
+        assert out.database is not None and out.table is not None  # a table output
         return read_table_digest(database_url(ctx.ws.root, out.database), out.table, window.key) == state["output_digest"]
     except Exception:  # noqa: BLE001 - an output that cannot be read is not intact
         return False

@@ -55,8 +55,10 @@ def worker_main(conn: Connection, ctx: RunContext, env: dict[str, str], cwd: str
             return
         _, tid, attempt = msg
         conn.send(("start", tid))
-        outcome = run_attempt(ctx, attempt,
-                              on_claim=lambda fence, run_id, fp, tid=tid: conn.send(("claimed", tid, fence, run_id, fp)))
+        def claimed(fence: int, run_id: int, fingerprint: str | None, tid: int = tid) -> None:
+            conn.send(("claimed", tid, fence, run_id, fingerprint))
+
+        outcome = run_attempt(ctx, attempt, on_claim=claimed)
         conn.send(("end", tid, outcome.as_dict()))
 
 
@@ -87,7 +89,7 @@ def _let_fork_server_go() -> None:
     with contextlib.suppress(Exception):
         from multiprocessing import forkserver
 
-        server = forkserver._forkserver  # noqa: SLF001 - the standard library keeps this fd private
+        server: Any = forkserver._forkserver  # noqa: SLF001 - the fd is private
         if server._forkserver_alive_fd is not None:
             os.close(server._forkserver_alive_fd)
             server._forkserver_alive_fd = None

@@ -29,7 +29,7 @@ import json
 import uuid
 from decimal import Decimal
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Literal
 
 from runner.io.rejects import Rows, UnreadableFile, rejects_frame
 
@@ -82,7 +82,8 @@ def read_avro(path: str | Path, columns: list[str] | None = None, label: str | N
             fields.append(f)
         values = _decode(fastavro, blocks, fh, raw_schema, [f.name for f in fields], label)
     count = len(values[fields[0].name]) if fields else 0
-    converted, reasons = {}, [None] * count
+    converted: dict[str, Any] = {}
+    reasons: list[str | None] = [None] * count
     for f in fields:
         series, bad = _convert(f, values[f.name])
         converted[f.name] = series
@@ -143,7 +144,7 @@ def _underlying(schema: Any) -> Any:
 _BASE = {"int": "Int32", "long": "Int64", "float": "Float32", "double": "Float64", "boolean": "Boolean",
          "string": "String", "enum": "String", "bytes": "Binary", "fixed": "Binary"}
 # timestamps as weir holds them: microseconds, except nanoseconds kept as they are
-_STAMPS = {"timestamp-millis": ("us", "UTC"), "timestamp-micros": ("us", "UTC"), "timestamp-nanos": ("ns", "UTC"),
+_STAMPS: dict[str, tuple[Literal["ns", "us", "ms"], str | None]] = {"timestamp-millis": ("us", "UTC"), "timestamp-micros": ("us", "UTC"), "timestamp-nanos": ("ns", "UTC"),
            "local-timestamp-millis": ("us", None), "local-timestamp-micros": ("us", None),
            "local-timestamp-nanos": ("ns", None)}
 _DAY_MS = 86_400_000

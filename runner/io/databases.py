@@ -132,17 +132,18 @@ def database_frame(root: Path, name: str, source: DatabaseInput, window: Window,
         with engine.connect() as conn:
             if source.table is not None:
                 tbl = sa.Table(source.table, sa.MetaData(), autoload_with=conn)
-                stmt = sa.select(tbl)
+                stmt: Any = sa.select(tbl)
                 if source.time_column:
                     col = tbl.c[source.time_column]
                     stmt = stmt.where(col >= sa.bindparam("window_start"), col < sa.bindparam("window_end"))
             else:
+                assert source.query is not None  # a database input has a table or a query
                 inner = sa.text(source.query)
                 if source.time_column:
                     sub = inner.columns().subquery("q")
-                    col = sa.column(source.time_column)
+                    where_col: Any = sa.column(source.time_column)
                     stmt = sa.select(sa.text("*")).select_from(sub).where(
-                        col >= sa.bindparam("window_start"), col < sa.bindparam("window_end"))
+                        where_col >= sa.bindparam("window_start"), where_col < sa.bindparam("window_end"))
                 else:
                     stmt = inner
             wanted = {k: v for k, v in params.items() if k in str(stmt)}
@@ -163,16 +164,16 @@ def database_frame(root: Path, name: str, source: DatabaseInput, window: Window,
         if missing:
             raise InputError(f"input {name}: the query returns no column(s) {', '.join(missing)}")
         label = f"{masked(url)} {source.table or 'query'}"
-        rows = frame.with_row_index(ROW).with_columns(pl.lit(0, dtype=pl.UInt32).alias(FILE))
+        numbered = frame.with_row_index(ROW).with_columns(pl.lit(0, dtype=pl.UInt32).alias(FILE))
         repeats = None
         if key:
-            repeats = repeated_keys([key_frame(rows.lazy(), key, columns, rows.schema, source.time_column,
+            repeats = repeated_keys([key_frame(numbered.lazy(), key, columns, numbered.schema, source.time_column,
                                                window, job_tz)], len(key))
             if repeats.height:
                 stats.tally(name, 0, 0, int(repeats[COPIES].sum()) - repeats.height)
                 raise key_problem(name, key, repeats, [label])
-        inspector = BatchInspector(name, [label], source, columns, rows.schema, window, job_tz, stats, repeats)
-        frame = inspector(inspector.stage(rows.lazy()).collect())
+        inspector = BatchInspector(name, [label], source, columns, numbered.schema, window, job_tz, stats, repeats)
+        frame = inspector(inspector.stage(numbered.lazy()).collect())
         stats.counted = True
     else:
         stats.tally(name, frame.height, 0, 0)

@@ -15,7 +15,11 @@ import fnmatch
 import glob
 import hashlib
 import os
+import re
+import secrets
+import socket
 import stat
+import time
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -146,3 +150,84 @@ def file_sha256(path: str | Path) -> str:
         for block in iter(lambda: fh.read(1 << 20), b""):
             h.update(block)
     return h.hexdigest()
+
+
+# ---------------------------------------------------------------- temporary files and atomic writes
+
+TMP_MARK = ".weir-tmp-"
+# .NAME.weir-tmp-HOST-PID-RANDOM (HOST- absent in names written before it was added)
+_TMP_NAME = re.compile(r"^\..+\.weir-tmp-(?:(?P<host>[A-Za-z0-9._-]+)-)?(?P<pid>\d+)-[0-9a-f]{8}$")
+STALE_AFTER = 24 * 3600  # seconds: a temporary file untouched this long is no live write's
+
+
+def _host() -> str:
+    return re.sub(r"[^A-Za-z0-9.-]", "_", socket.gethostname())[:64] or "host"
+
+
+def temporary_name(final_name: str) -> str:
+    """The name of a new temporary file for `final_name`: it says which host and process write it."""
+    return f".{final_name}{TMP_MARK}{_host()}-{os.getpid()}-{secrets.token_hex(4)}"
+
+
+def stale_temporary(name: str, mtime: float, now: float) -> bool:
+    """True for weir's own temporary file name that no live process is writing any more.
+
+    Its process, of this host, has ended; or (another host's, or a reused
+    process id) it was last written over `STALE_AFTER` seconds ago.
+    """
+    from runner.io.owners import process_ended
+
+    found = _TMP_NAME.match(name)
+    if found is None:
+        return False
+    if now - mtime > STALE_AFTER:
+        return True
+    host = found["host"]
+    return (host is None or host == _host()) and process_ended(int(found["pid"]))
+
+
+def clean_leftovers(folder: int | str | Path, prefix: str = "", now: float | None = None) -> int:
+    """Remove stale temporary files (whose names start with `prefix`) from a folder (a path or a
+    descriptor); return how many."""
+    now = time.time() if now is None else now
+    try:
+        entries = list(os.scandir(folder))
+    except (FileNotFoundError, NotADirectoryError):
+        return 0
+    dir_fd = folder if isinstance(folder, int) else None
+    count = 0
+    for entry in entries:
+        if TMP_MARK not in entry.name or not entry.name.startswith(prefix):
+            continue
+        try:
+            if entry.is_file(follow_symlinks=False) and stale_temporary(
+                    entry.name, entry.stat(follow_symlinks=False).st_mtime, now):
+                os.unlink(entry.name if dir_fd is not None else entry.path, dir_fd=dir_fd)
+                count += 1
+        except FileNotFoundError:
+            pass
+    return count
+
+
+def write_atomic(path: Path | str, data: bytes | str, mode: int = 0o644, mtime: float | None = None) -> Path:
+    """Replace the file at `path` with `data` in one step: a temporary file beside it (a weir
+    temporary name, swept like any other when a crash leaves it), written, flushed to disk, then
+    renamed over `path`. A reader sees the old file or the new one, never half of one. The folder
+    is created when missing; `mtime` (seconds) sets the new file's modification time.
+    """
+    target = Path(path)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    tmp = target.with_name(temporary_name(target.name))
+    try:
+        with open(tmp, "wb") as fh:
+            fh.write(data.encode("utf-8") if isinstance(data, str) else data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.chmod(tmp, mode)
+        if mtime is not None:
+            os.utime(tmp, (mtime, mtime))
+        os.replace(tmp, target)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return target

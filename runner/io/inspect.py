@@ -91,7 +91,7 @@ def window_filter(columns: dict[str, Column], time_column: str | None, window: W
     if isinstance(dtype, pl.Date):
         t = t.cast(pl.Datetime("us"))
         dtype = pl.Datetime("us")
-    if dtype.time_zone is None:
+    if getattr(dtype, "time_zone", None) is None:
         t = t.dt.replace_time_zone(job_tz, ambiguous="earliest", non_existent="null")
     t = t.dt.convert_time_zone("UTC")
     return (t >= pl.lit(window.start)) & (t < pl.lit(window.end))
@@ -242,6 +242,7 @@ class BatchInspector:
         """True on rows whose key was seen on an earlier row of the window."""
         import polars as pl
 
+        assert self.repeats is not None  # only called when keys repeat
         keys = frame.select(*self.keys, self.position)
         joined = keys.join(self.repeats, on=self.repeats.columns[:-1], how="left", maintain_order="left")
         return joined.select(pl.col(_FIRST).is_not_null() & (pl.col(_FIRST) != pl.col(POSITION))).to_series()
@@ -276,7 +277,8 @@ class BatchInspector:
                 mask = mask | repeated
             rejected = int(mask.sum())
             if rejected:
-                # reasons are worked out for the bad rows only
+                # reasons are worked out for the bad rows only (a rule or a repeated key: a reason each)
+                assert self.reason is not None
                 bad = frame.filter(mask).with_columns(self.reason.alias("__reason"))
                 frame = frame.filter(~mask)
         seen = self.stats.tally(self.name, height, dropped, rejected)

@@ -23,10 +23,6 @@ from __future__ import annotations
 
 import contextlib
 import os
-import re
-import secrets
-import socket
-import time
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import IO, TYPE_CHECKING, Any
@@ -34,7 +30,7 @@ from typing import IO, TYPE_CHECKING, Any
 from runner.core.fingerprints import batches_digest, frame_digest, sort_columns
 from runner.errors import WeirError
 from runner.io.databases import rows_frame
-from runner.io.files import escapes, file_sha256
+from runner.io.files import TMP_MARK, clean_leftovers, escapes, file_sha256, temporary_name
 
 if TYPE_CHECKING:
     from datetime import datetime
@@ -44,10 +40,6 @@ if TYPE_CHECKING:
     from runner.core.workspace import Workspace
 
 STAMPS = ("window_start", "window_end", "run_id", "code_version")
-TMP_MARK = ".weir-tmp-"
-# .NAME.weir-tmp-HOST-PID-RANDOM (HOST- absent in names written before it was added)
-_TMP_NAME = re.compile(r"^\..+\.weir-tmp-(?:(?P<host>[A-Za-z0-9._-]+)-)?(?P<pid>\d+)-[0-9a-f]{8}$")
-STALE_AFTER = 24 * 3600  # seconds: a temporary file untouched this long is no live write's
 _FLAGS = getattr(os, "O_CLOEXEC", 0) | getattr(os, "O_NOFOLLOW", 0)
 
 
@@ -184,55 +176,6 @@ def remove(root: Path, relative: str) -> bool:
         return False
     finally:
         os.close(folder)
-
-
-def _host() -> str:
-    return re.sub(r"[^A-Za-z0-9.-]", "_", socket.gethostname())[:64] or "host"
-
-
-def temporary_name(final_name: str) -> str:
-    """The name of a new temporary file for `final_name`: it says which host and process write it."""
-    return f".{final_name}{TMP_MARK}{_host()}-{os.getpid()}-{secrets.token_hex(4)}"
-
-
-def stale_temporary(name: str, mtime: float, now: float) -> bool:
-    """True for weir's own temporary file name that no live process is writing any more.
-
-    Its process, of this host, has ended; or (another host's, or a reused
-    process id) it was last written over `STALE_AFTER` seconds ago.
-    """
-    from runner.io.ledger.owners import process_ended
-
-    found = _TMP_NAME.match(name)
-    if found is None:
-        return False
-    if now - mtime > STALE_AFTER:
-        return True
-    host = found["host"]
-    return (host is None or host == _host()) and process_ended(int(found["pid"]))
-
-
-def clean_leftovers(folder: int | str | Path, prefix: str = "", now: float | None = None) -> int:
-    """Remove stale temporary files (whose names start with `prefix`) from a folder (a path or a
-    descriptor); return how many."""
-    now = time.time() if now is None else now
-    try:
-        entries = list(os.scandir(folder))
-    except (FileNotFoundError, NotADirectoryError):
-        return 0
-    dir_fd = folder if isinstance(folder, int) else None
-    count = 0
-    for entry in entries:
-        if TMP_MARK not in entry.name or not entry.name.startswith(prefix):
-            continue
-        try:
-            if entry.is_file(follow_symlinks=False) and stale_temporary(
-                    entry.name, entry.stat(follow_symlinks=False).st_mtime, now):
-                os.unlink(entry.name if dir_fd is not None else entry.path, dir_fd=dir_fd)
-                count += 1
-        except FileNotFoundError:
-            pass
-    return count
 
 
 def stage_file(root: Path, relative: str, result: pl.LazyFrame, fmt: str,

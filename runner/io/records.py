@@ -80,7 +80,7 @@ def _collect(exc: UnicodeError) -> tuple[str, int]:
 codecs.register_error("weir-collect", _collect)
 
 
-def span_end(text: bytes | mmap.mmap, arr: np.ndarray, lo: int, stop: int) -> int:
+def span_end(text: bytes | bytearray | mmap.mmap, arr: np.ndarray, lo: int, stop: int) -> int:
     """Where a chunk of text from `lo` should end, at most `CHUNK` on and never after `stop`:
     after a line feed when there is one, else before the first byte of a UTF-8 sequence."""
     hi = min(lo + CHUNK, stop)
@@ -107,7 +107,7 @@ def let_go(text: bytes | mmap.mmap, start: int, upto: int) -> int:
     return max(start, end)
 
 
-def bad_text(text: bytes | mmap.mmap, start: int, stop: int | None = None) -> np.ndarray:
+def bad_text(text: bytes | bytearray | mmap.mmap, start: int, stop: int | None = None) -> np.ndarray:
     """Sorted positions of the byte sequences that are not UTF-8 in `text[start:stop]`.
 
     Only chunks holding a byte above 0x7F are decoded at all.
@@ -302,6 +302,7 @@ class Scan:
         lo = self.checked
         if upto <= lo:
             return
+        text: bytes | bytearray | mmap.mmap
         if 0 <= base <= lo:
             text, arr, shift = self.buf, self.buf_arr, base
         else:

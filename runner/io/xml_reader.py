@@ -61,7 +61,7 @@ def read_xml(path: str | Path, xsd: str | Path, element: str, label: str | None 
                 reasons.setdefault(index, []).append(f"{_local(children[index].tag)}: {error.reason}")
                 continue
         number = owner.get(id(elem)) if elem is not None else None
-        if number is None:
+        if elem is None or number is None:
             raise UnreadableFile(f"{label}: does not match {xsd.name}: {error.reason or error}")
         where = "" if elem is children[number] else f"{_local(elem.tag)}: "
         reasons.setdefault(number, []).append(where + str(error.reason))

@@ -200,7 +200,8 @@ class PythonStep(Model):
 def _step_kind(value: Any) -> str | None:
     if isinstance(value, dict):
         return _closest_kind(value, {"sql": "sql step", "python": "python step"})
-    return {SqlStep: "sql step", PythonStep: "python step"}.get(type(value))
+    kinds: dict[type, str] = {SqlStep: "sql step", PythonStep: "python step"}
+    return kinds.get(type(value))
 
 
 Step = Annotated[

@@ -12,8 +12,6 @@ imported inside the functions, so importing this package costs nothing.
 
 from __future__ import annotations
 
-import os
-import tempfile
 from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -31,24 +29,6 @@ def build_report(ws: Workspace, ledger: Ledger, at: datetime) -> str:
     return render(collect(ws, ledger, at))
 
 
-def write_report(path: Path | str, text: str) -> Path:
-    """Write `text` to `path` atomically: a temporary file beside it, flushed, then renamed over it."""
-    target = Path(path)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, target)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return target
-
-
 def report(root: Path | str, at: datetime, ledger_url: str | None = None, out: Path | str | None = None,
            metrics: Path | str | None = None) -> dict[str, Any]:
     """Write the page of the workspace at `root` for the clock `at` (and the metrics file when asked).
@@ -59,21 +39,22 @@ def report(root: Path | str, at: datetime, ledger_url: str | None = None, out: P
     """
     from runner.core.paths import REPORT
     from runner.engine.loading import load_workspace
-    from runner.io.ledger.store import Ledger, default_url
-    from runner.report.data import ORDER, collect
+    from runner.io.files import write_atomic
+    from runner.io.ledger.store import open_ledger
+    from runner.report.data import collect
     from runner.report.page import render
 
     ws = load_workspace(root, thorough=False)
-    ledger = Ledger(ledger_url or default_url(ws.root), create=False)
+    ledger = open_ledger(ws.root, ledger_url, create=False)
     try:
         data = collect(ws, ledger, at)
         page = render(data)
         target = Path(out) if out is not None else ws.path(REPORT)
-        write_report(target, page)
+        write_atomic(target, page)
         result: dict[str, Any] = {
             "report": str(target), "bytes": len(page.encode("utf-8")), "jobs": len(data.jobs),
             "windows": sum(v.total for v in data.jobs),
-            "counts": {s: sum(v.counts.get(s, 0) for v in data.jobs) for s in ORDER},
+            "counts": data.totals(),
             "late": sum(v.late for v in data.jobs),
             "overdue": sum(v.overdue for v in data.jobs),
             "metrics": None,
@@ -83,7 +64,7 @@ def report(root: Path | str, at: datetime, ledger_url: str | None = None, out: P
             from runner.report.metrics import metrics_text
 
             text = metrics_text(ws, ledger, at, data=data)
-            write_report(Path(metrics), text)
+            write_atomic(Path(metrics), text)
             result["metrics"] = str(metrics)
         return result
     finally:

@@ -21,7 +21,7 @@ from __future__ import annotations
 import shlex
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, cast
 from zoneinfo import ZoneInfo
 
 from runner.model.timeutil import format_instant, from_us, to_us
@@ -344,9 +344,9 @@ def run_chart(frame: pl.DataFrame, column: str, axis: tuple[int, int],
     return {
         "n": f.height, "buckets": buckets,
         "points": [[int(r[0]), *(float(x) for x in r[1:5]), int(r[5])] for r in per.iter_rows()],
-        "median": float(values.median() or 0), "p90": float(values.quantile(0.9, "nearest") or 0),
+        "median": float(cast(float, values.median()) or 0), "p90": float(cast(float, values.quantile(0.9, "nearest")) or 0),
         "max": float(top[column]), "max_window": top["window"],
-        "min_positive": float(values.filter(values > 0).min() or 0) if (values > 0).any() else 0.0,
+        "min_positive": float(cast(float, values.filter(values > 0).min()) or 0) if (values > 0).any() else 0.0,
     }
 
 
@@ -423,8 +423,8 @@ def _local_offsets(frame: pl.DataFrame, tz: str) -> pl.DataFrame:
 def time_axis(frames: dict[str, pl.DataFrame], at: datetime, open_ended: bool) -> tuple[int, int]:
     """The shared time axis: from the first due window of any job to the clock (to the last window's
     end once every job has ended)."""
-    firsts = [int(f["start_us"].min()) for f in frames.values() if f.height]
-    lasts = [int(f["end_us"].max()) for f in frames.values() if f.height]
+    firsts = [int(cast(int, f["start_us"].min())) for f in frames.values() if f.height]
+    lasts = [int(cast(int, f["end_us"].max())) for f in frames.values() if f.height]
     now = to_us(at)
     if not firsts:
         return now - 86_400_000_000, now

@@ -82,7 +82,7 @@ def ticks(axis: tuple[int, int], zone: ZoneInfo, width: float = PLOT_W,
         approx = {"hour": 3600, "day": 86400, "week": 7 * 86400, "month": 30.4 * 86400, "year": 365 * 86400}[unit]
         if span / (approx * n) <= (room or width) / 90:
             break
-    out = []
+    out: list[tuple[float, str]] = []
     local = start.astimezone(zone)
     t = _floor(local, unit, int(n))
     while t < end.astimezone(zone):

@@ -22,6 +22,8 @@ from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from zoneinfo import ZoneInfo
 
+from runner.io.files import write_atomic
+
 TZ = ZoneInfo("Europe/Lisbon")
 FIRST_DAY = datetime(2026, 3, 22)
 DAYS = 14
@@ -74,11 +76,7 @@ def _write(path: Path, text: str, mtime: datetime) -> bool:
         if int(st.st_mtime) != stamp:
             os.utime(path, (stamp, stamp))
         return False
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.tmp")
-    tmp.write_bytes(data)
-    os.utime(tmp, (stamp, stamp))
-    os.replace(tmp, path)
+    write_atomic(path, data, mtime=stamp)
     return True
 
 
@@ -112,11 +110,11 @@ def write_landing(root: Path) -> LandingSummary:
                     rides += 1
             if (d, local.hour) in BAD_ROWS:
                 ride_number += 1
-                started = (hour_utc + timedelta(minutes=30)).astimezone(TZ).isoformat()
+                started_text = (hour_utc + timedelta(minutes=30)).astimezone(TZ).isoformat()
                 kind = rng.choice(["amount", "fare", "negative"])
                 amount = {"amount": "n/a", "fare": "1.20", "negative": "-3.00"}[kind]
                 fare = "bonus" if kind == "fare" else "member"
-                parts["main"].append(f"R{ride_number:07d},{started},Harbour,{fare},{amount}")
+                parts["main"].append(f"R{ride_number:07d},{started_text},Harbour,{fare},{amount}")
                 bad += 1
             end = hour_utc + timedelta(hours=1)
             header = "ride_id,started_at,zone,fare,amount\n"

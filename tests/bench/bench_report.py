@@ -48,9 +48,10 @@ from runner.core.assessment import Snapshot, assess_job  # noqa: E402
 from runner.core.planner import _upstream  # noqa: E402
 from runner.engine.loading import load_workspace  # noqa: E402
 from runner.engine.prepare import spec_and_code  # noqa: E402
+from runner.io.files import write_atomic  # noqa: E402
 from runner.io.ledger import schema as ledger_schema  # noqa: E402
 from runner.io.ledger import store as ledger_mod  # noqa: E402
-from runner.report import build_report, write_report  # noqa: E402
+from runner.report import build_report  # noqa: E402
 from runner.report.data import collect  # noqa: E402
 from runner.report.metrics import metrics_text  # noqa: E402
 from runner.report.page import render  # noqa: E402
@@ -295,7 +296,7 @@ def main() -> None:
     pages = {"old": best["old build_report"][1], "new": best["new build_report"][1]}
     outs = {}
     for which, page in pages.items():
-        out = write_report(root / "state" / f"report-{which}.html", page)
+        out = write_atomic(root / "state" / f"report-{which}.html", page)
         outs[which] = out
         size = out.stat().st_size
         print(f"{which} page: {size:,} bytes ({size / 2**20:.2f} MiB), gzip {len(gzip.compress(page.encode())):,} bytes")

@@ -4,7 +4,7 @@
 background thread of the process that supervises the workers, so a step
 that never lets go of the interpreter, or a worker that hangs, cannot stop
 the renewals; it also notices claims another runner has taken over. Who an
-owner is and when a holder is gone: `runner.io.ledger.owners`.
+owner is and when a holder is gone: `runner.io.owners`.
 """
 
 from __future__ import annotations

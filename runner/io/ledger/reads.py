@@ -6,7 +6,7 @@ class: it uses the ledger's engine and transactions, and writes nothing).
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from contextlib import AbstractContextManager
 from typing import TYPE_CHECKING, Any
 
@@ -178,21 +178,6 @@ class LedgerReads:
             rows = conn.execute(q).all()
         return rows_frame(rows, schema)
 
-    def last_runs(self, job: str) -> pl.DataFrame:
-        """Each window's last finished run (the run its state row points at), one query; for reports."""
-        import polars as pl
-
-        cols = {"run_id": pl.Int64, "status": pl.String, "finished_at": pl.String, "seconds": pl.Float64,
-                "rows_read": pl.Int64, "rows_rejected": pl.Int64, "rows_written": pl.Int64,
-                "fingerprint": pl.String, "error": pl.String}
-        if self.engine is None:
-            return pl.DataFrame(schema=cols)
-        q = (sa.select(runs.c.id, *[runs.c[c] for c in list(cols)[1:]])
-             .select_from(windows.join(runs, runs.c.id == windows.c.run_id)).where(windows.c.job == job))
-        with self._tx(read=True) as conn:
-            rows = conn.execute(q).all()
-        return rows_frame(rows, cols)
-
     def newest_runs(self) -> dict[str, dict[str, Any]]:
         """Per job: `success` (finish time of its newest done run) and `last` (its newest finished run)."""
         if self.engine is None:
@@ -212,7 +197,7 @@ class LedgerReads:
                     out.setdefault(job, {})["last"] = dict(row)
         return out
 
-def _frame(rows: list[tuple], columns: list[tuple[str, Any, Any]]) -> pl.DataFrame:
+def _frame(rows: Sequence[Any], columns: list[tuple[str, Any, Any]]) -> pl.DataFrame:
     """A frame built column by column from DBAPI row tuples."""
     import polars as pl
 

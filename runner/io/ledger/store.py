@@ -20,7 +20,7 @@ Tables
 Instants are stored as RFC 3339 UTC text (`2026-01-01T00:00:00Z`); windows are
 keyed by their UTC start. Claims and locks are taken with a plain INSERT (the
 primary key makes it atomic) or, when the holder is free (its lease expired,
-or it is provably gone: `owners.holder_gone`), a conditional UPDATE; both are
+or it is provably gone: `runner.io.owners.holder_gone`), a conditional UPDATE; both are
 atomic on every database, so no dialect-specific locking is needed and
 several hosts can share one PostgreSQL ledger. Lease expiry is measured on
 the database server's clock, so hosts whose clocks disagree agree on it. A
@@ -43,7 +43,6 @@ import sqlalchemy as sa
 from sqlalchemy import exc as sa_exc
 
 from runner.errors import LedgerError
-from runner.io.ledger.owners import holder_gone
 from runner.io.ledger.reads import LedgerReads
 from runner.io.ledger.schema import (
     STATE_ROW,
@@ -57,6 +56,7 @@ from runner.io.ledger.schema import (
     texts,
     windows,
 )
+from runner.io.owners import holder_gone
 
 if TYPE_CHECKING:
     pass
@@ -103,6 +103,13 @@ class _ClaimStatements:
             owner=_b("b_owner"), expires=now + _b("b_lease"))
         self.confirm = sa.update(claims).where(*_CLAIM_WHERE, c.owner == _b("b_owner"), c.fence == _b("b_fence")
                                                ).values(expires=now + _b("b_lease"))
+
+
+def _inserted_id(result: sa.CursorResult[Any]) -> int:
+    """The primary key of the row an INSERT added."""
+    key = result.inserted_primary_key
+    assert key is not None
+    return int(key[0])
 
 
 def utc_text(instant: datetime | None = None) -> str:
@@ -214,7 +221,7 @@ class Ledger(LedgerReads):
     # ------------------------------------------------------------ claims and locks
 
     def claim(self, job: str, key: str, owner: str, ttl: float) -> bool:
-        """Take the claim on (job, window) unless a live holder has it (see `owners.holder_gone`)."""
+        """Take the claim on (job, window) unless a live holder has it (see `runner.io.owners.holder_gone`)."""
         return self._lease(claims, {"job": job, "window_key": key}, owner, ttl)
 
     def release(self, job: str, key: str, owner: str, conn: sa.Connection | None = None) -> None:
@@ -349,7 +356,7 @@ class Ledger(LedgerReads):
                 self.put_texts(conn, stored)
                 row = {"status": "running", "started_at": utc_text(), "host": socket.gethostname(),
                        "pid": os.getpid(), **values}
-                run_id = int(conn.execute(_INSERT_RUN, row).inserted_primary_key[0])
+                run_id = _inserted_id(conn.execute(_INSERT_RUN, row))
                 conn.execute(_SET_FENCE, {**where, "b_owner": owner, "b_fence": run_id})
         except _Current:
             return "current", None  # rolled back: the claim was never taken
@@ -373,7 +380,7 @@ class Ledger(LedgerReads):
                             ).rowcount != 1:
                 return None
             self.put_texts(conn, stored)
-            return int(conn.execute(_INSERT_RUN, row).inserted_primary_key[0])
+            return _inserted_id(conn.execute(_INSERT_RUN, row))
 
     def finish_run(self, run_id: int, job: str, key: str, owner: str, fence: int, values: dict[str, Any],
                    window: dict[str, Any] | None, release: bool) -> bool:

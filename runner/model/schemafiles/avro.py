@@ -19,7 +19,7 @@ from __future__ import annotations
 import json
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 from runner.model.schemafiles import (
     ColumnDecl,
@@ -156,13 +156,13 @@ def avro_field(path: Path, name: str, schema: Any, named: dict[str, Any]) -> Avr
         "name": name, "nullable": nullable, "base": base, "logical": logical, "precision": precision,
         "scale": scale, "size": props.get("size", 0), "symbols": tuple(props.get("symbols", ())),
     }
-    decl, refusal = _decl(base, logical, precision, scale, common["symbols"])
+    decl, refusal = _decl(cast(str, base), logical, precision, scale, common["symbols"])
     if decl is not None:
         decl = {**decl, "nullable": nullable}
     return AvroField(**common, decl=decl, refusal=refusal)
 
 
-_SIMPLE = {
+_SIMPLE: dict[str, dict[str, Any]] = {
     "boolean": {"type": "bool"},
     "int": {"type": "int", **int_range(32, True)},
     "long": {"type": "int"},

@@ -218,7 +218,7 @@ def _json_type(value: Any) -> str:
 def _typed(path: Path, name: str, kind: str, schema: dict[str, Any]) -> ColumnDecl:
     if kind == "string":
         fmt = schema.get("format")
-        decl: ColumnDecl = {"type": {"date": "date", "date-time": "datetime(UTC)"}.get(fmt, "str")}
+        decl: ColumnDecl = {"type": {"date": "date", "date-time": "datetime(UTC)"}.get(fmt or "", "str")}
         pattern = schema.get("pattern")
         low, high = schema.get("minLength"), schema.get("maxLength")
         if (pattern is not None or low is not None or high is not None) and decl["type"] != "str":

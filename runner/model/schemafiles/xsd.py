@@ -211,9 +211,10 @@ def simple_column(path: Path, name: str, kind: Any) -> ColumnDecl:
             raise SchemaFileError(path, name, f"has {what} type: weir reads one value of one type per column")
         chain.append(t)
         t = getattr(t, "base_type", None)
-    if t is None or not t.name.startswith(XSD):
+    traced = t.name if t is not None else None
+    if traced is None or not traced.startswith(XSD):
         raise SchemaFileError(path, name, "has a type weir cannot trace to a built-in XSD type")
-    builtin = t.name[len(XSD):]
+    builtin = traced[len(XSD):]
     facets: dict[str, list[Any]] = {}
     for level in chain:  # most derived first
         for key, facet in (getattr(level, "facets", None) or {}).items():
