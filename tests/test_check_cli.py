@@ -7,12 +7,6 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parent.parent
 
 
-def test_check_accepts_the_example_workspace(weir):
-    result = weir(ROOT, "check", "--at", "2026-04-10T00:00Z")
-    assert result.exit_code == 0, result.output
-    assert "rides_hourly" in result.output
-
-
 def test_check_reports_every_problem_with_file_line_column_and_exit_2(weir, make_workspace):
     root = make_workspace({
         "a": """
