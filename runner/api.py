@@ -26,6 +26,7 @@ from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, cast
 
+from runner.core.states import RunStatus, State, Status
 from runner.errors import UsageError
 
 if TYPE_CHECKING:
@@ -245,7 +246,7 @@ def run(root: Root, *, job: str, window: str, ledger: str | None = None, force: 
     found = find_window(ws, job, window)
     cad = ws.cadence(job)
     if at is not None and found.end + cad.settle > at:
-        return Outcome(job, found.id, "not due", f"not due until {format_instant(found.end + cad.settle, cad.tz)}")
+        return Outcome(job, found.id, Status.NOT_DUE, f"not due until {format_instant(found.end + cad.settle, cad.tz)}")
     book = open_ledger(ws.root, url=ledger)
     sweep_temporaries(ws, at or found.end)
     return run_tasks([Task(job, found)], RunContext(ws=ws, ledger=book), 1, force=force)[0]
@@ -266,7 +267,7 @@ class BackfillResult:
 
     @property
     def failed(self) -> int:
-        return sum(1 for o in self.outcomes if o.status == "failed")
+        return sum(1 for o in self.outcomes if o.status == Status.FAILED)
 
     def as_dict(self) -> dict[str, Any]:
         return {"windows": [o.as_dict() for o in self.outcomes], "counts": self.counts(),
@@ -473,7 +474,7 @@ def stale(root: Root, *, jobs: list[str], at: datetime, ledger: str | None = Non
     assessed = survey(ws, open_ledger(ws.root, url=ledger, create=False), at, jobs, recheck_all=True)
     found = [StaleWindow(job, row["window"], row["window_key"], row["reasons"], row["pending"])
              for job, frame in assessed.items()
-             for row in frame.filter(pl.col("state") == "stale").select(
+             for row in frame.filter(pl.col("state") == State.STALE).select(
                  "window", "window_key", "reasons", "pending").iter_rows(named=True)]
     return StaleReport(stale_ranges(ws, assessed), found, dict(assessed.unplanned))
 
@@ -533,12 +534,12 @@ def impact(root: Root, *, at: datetime, ledger: str | None = None, workers: int 
     workers = workers or default_workers()
     out = []
     for job, frame in assessed.items():
-        stale_rows = frame.filter(pl.col("state") == "stale")
+        stale_rows = frame.filter(pl.col("state") == State.STALE)
         by_reason: dict[str, int] = {}
         for reasons in stale_rows["reasons"].to_list():
             for r in reasons:
                 by_reason[r] = by_reason.get(r, 0) + 1
-        stats = book.run_stats(job).filter(pl.col("status") == "done")
+        stats = book.run_stats(job).filter(pl.col("status") == RunStatus.DONE)
         median = cast(float, stats["seconds"].median()) if stats.height else None
         count = stale_rows.height
         out.append(JobImpact(job, count, by_reason, int(stale_rows["pending"].sum()) if count else 0, median,

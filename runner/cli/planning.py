@@ -6,6 +6,7 @@ import click
 
 from runner.cli.options import Context, at_option, clock, json_option, workers_option
 from runner.cli.render import blank_if_none, emit_json, exit_if_unplanned, make_console, plan_ranges
+from runner.core.states import RunStatus
 
 
 @click.command()
@@ -128,7 +129,7 @@ def why(obj: Context, job: str, window_id: str, at: str | None, as_json: bool) -
     run = info.get("last_run")
     if run:
         tail = f"fingerprint {(run['fingerprint'] or '')[:12]}; code {run['code_version'] or '-'}"
-        if run["status"] == "running":  # nothing counted yet: no figures to show
+        if run["status"] == RunStatus.RUNNING:  # nothing counted yet: no figures to show
             console.print(f"last run #{run['id']} running, started at {run['started_at']}; {tail}")
         else:
             secs = f"{run['seconds']:.2f}s" if run["seconds"] is not None else "-"

@@ -7,6 +7,7 @@ from typing import Any
 import click
 
 from runner.cli.render import outcome_line
+from runner.core.states import Status
 
 
 class Progress:
@@ -14,7 +15,7 @@ class Progress:
 
     def __init__(self, tty: bool, quiet: bool = False):
         self.tty, self.quiet = tty, quiet
-        self.counts = {"done": 0, "failed": 0, "skipped": 0, "waiting": 0}
+        self.counts = {Status.DONE: 0, Status.FAILED: 0, Status.SKIPPED: 0, Status.WAITING: 0}
         self.bar: Any = None  # a rich Progress once started
         self.task: Any = None
 
@@ -35,16 +36,16 @@ class Progress:
         self.task = self.bar.add_task("windows", total=total, counts="")
 
     def update(self, task: Any, outcome: Any) -> None:
-        key = outcome.status if outcome.status in self.counts else "waiting"
+        key = outcome.status if outcome.status in self.counts else Status.WAITING
         self.counts[key] += 1
         if self.quiet:
             return
         if self.bar is not None:
             text = "  ".join(f"{k} {v}" for k, v in self.counts.items() if v)
             self.bar.update(self.task, advance=1, counts=text)
-            if outcome.status == "failed":
+            if outcome.status == Status.FAILED:
                 self.bar.console.print(f"[bold]failed[/] {outcome.job} {outcome.window}: {outcome.reason}")
-        elif outcome.status != "skipped":
+        elif outcome.status != Status.SKIPPED:
             click.echo(outcome_line(outcome))
 
     def stop(self) -> None:

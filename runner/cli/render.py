@@ -9,6 +9,8 @@ from typing import Any
 
 import click
 
+from runner.core.states import Status
+
 
 def emit_json(data: Any) -> None:
     click.echo(json.dumps(data, indent=2, ensure_ascii=False, default=str))
@@ -26,7 +28,7 @@ def make_console(err: bool = False):
 def outcome_line(o: Any) -> str:
     rows = f" {o.rows_written} rows" if o.rows_written is not None else ""
     took = f" {o.seconds:.2f}s" if o.seconds else ""
-    reason = f"  {o.reason}" if o.reason and o.status != "done" else ""
+    reason = f"  {o.reason}" if o.reason and o.status != Status.DONE else ""
     return f"{o.status:<8} {o.job} {o.window}{took}{rows}{reason}"
 
 
@@ -40,17 +42,17 @@ def backfill_summary(result: Any) -> None:
     jobs = list(dict.fromkeys([o.job for o in result.outcomes] + list(result.not_due)))
     for job in jobs:
         c = counts.get(job, {})
-        waiting = sum(v for k, v in c.items() if k not in ("done", "skipped", "failed"))
-        table.add_row(job, str(c.get("done", 0)), str(c.get("skipped", 0)), str(c.get("failed", 0)),
+        waiting = sum(v for k, v in c.items() if k not in (Status.DONE, Status.SKIPPED, Status.FAILED))
+        table.add_row(job, str(c.get(Status.DONE, 0)), str(c.get(Status.SKIPPED, 0)), str(c.get(Status.FAILED, 0)),
                       str(waiting), str(result.not_due.get(job, 0)))
     console = make_console()
     console.print(table)
-    waiting = [o for o in result.outcomes if o.status not in ("done", "skipped", "failed")]
+    waiting = [o for o in result.outcomes if o.status not in (Status.DONE, Status.SKIPPED, Status.FAILED)]
     for o in waiting[:5]:
         console.print(f"{o.status} {o.job} {o.window}: {o.reason}")
     if len(waiting) > 5:
         console.print(f"... and {len(waiting) - 5} more not run")
-    failed = [o for o in result.outcomes if o.status == "failed"]
+    failed = [o for o in result.outcomes if o.status == Status.FAILED]
     for o in failed[:10]:
         console.print(f"failed {o.job} {o.window}: {o.reason}")
     if failed:

@@ -17,6 +17,7 @@ from runner.cli.render import (
     outcome_line,
     tick_line,
 )
+from runner.core.states import Status
 
 
 @click.command()
@@ -42,7 +43,7 @@ def run(obj: Context, job: str, window_id: str, force: bool, as_json: bool) -> N
         emit_json(outcome.as_dict())
     else:
         click.echo(outcome_line(outcome))
-    if outcome.status == "failed":
+    if outcome.status == Status.FAILED:
         sys.exit(1)
 
 
@@ -136,7 +137,7 @@ def tick(obj: Context, at: str | None, workers: int | None, as_json: bool) -> No
     else:
         click.echo(tick_line(result, now))
         for o in result.outcomes:
-            if o.status in ("done", "failed"):
+            if o.status in (Status.DONE, Status.FAILED):
                 click.echo("  " + outcome_line(o))
     exit_if_unplanned(result.unplanned)
     if result.failed:

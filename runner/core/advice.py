@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 from runner.core.sqlcheck import aliases, groupings
+from runner.core.states import RunStatus
 from runner.errors import Problem
 from runner.model.spec import Job, SqlStep
 
@@ -50,7 +51,7 @@ def advise_job(job: str, cadence: str, stats: pl.DataFrame) -> JobAdvice:
     """Advice for one job from its finished runs (columns seconds, step_seconds, rows_written, status)."""
     import polars as pl
 
-    done = stats.filter(pl.col("status") == "done")
+    done = stats.filter(pl.col("status") == RunStatus.DONE)
     advice = JobAdvice(job, done.height)
     if done.height == 0:
         advice.suggestions.append("no finished runs yet: nothing to judge")

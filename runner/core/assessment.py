@@ -14,6 +14,7 @@ from datetime import UTC, datetime
 from typing import TYPE_CHECKING, Any
 
 from runner.core import fingerprints as fp
+from runner.core.states import State
 from runner.core.windows import Cadence, Window
 from runner.core.workspace import Workspace
 from runner.model.spec import FileInput, JobInput
@@ -22,7 +23,6 @@ from runner.model.timeutil import format_instant, from_us, parse_utc, to_us
 if TYPE_CHECKING:
     import polars as pl
 
-STATES = ("done", "stale", "failed", "running", "waiting", "missing")
 
 
 @dataclass
@@ -100,11 +100,11 @@ def _upstream(ws: Workspace, job: str, frame: pl.DataFrame, snapshot: Snapshot,
         lazy = pairs.lazy().join(rec.lazy(), on="producer_key", how="left")
         if same:
             current = frame.lazy().select(pl.col("window_key").alias("producer_key"),
-                                          (pl.col("state") == "done").alias("p_current"))
+                                          (pl.col("state") == State.DONE).alias("p_current"))
         else:
             a = assessed.get(source.job)
             current = (a.lazy().select(pl.col("window_key").alias("producer_key"),
-                                       ((pl.col("state") == "done") & ~pl.col("pending")).alias("p_current"))
+                                       ((pl.col("state") == State.DONE) & ~pl.col("pending")).alias("p_current"))
                        if a is not None else
                        pl.LazyFrame(schema={"producer_key": pl.String, "p_current": pl.Boolean}))
         lazy = lazy.join(current, on="producer_key", how="left").with_columns(
@@ -124,13 +124,13 @@ def _upstream(ws: Workspace, job: str, frame: pl.DataFrame, snapshot: Snapshot,
     linked = linked.sort("window_key", "input", "job", "producer_key")
     grouped = linked.group_by("window_key", maintain_order=True).agg(
         pl.col("entry").str.join(",").alias("text"),
-        (pl.col("p_state") == "done").fill_null(False).all().alias("up_ready"),
+        (pl.col("p_state") == State.DONE).fill_null(False).all().alias("up_ready"),
         pl.col("p_current").all().alias("up_current"),
-        pl.col("producer_key").filter((pl.col("p_state") != "done") | pl.col("p_state").is_null()).first()
+        pl.col("producer_key").filter((pl.col("p_state") != State.DONE) | pl.col("p_state").is_null()).first()
         .alias("first_missing"),
-        pl.col("job").filter((pl.col("p_state") != "done") | pl.col("p_state").is_null()).first()
+        pl.col("job").filter((pl.col("p_state") != State.DONE) | pl.col("p_state").is_null()).first()
         .alias("first_missing_job"),
-        (pl.col("producer_key").filter((pl.col("p_state") != "done") | pl.col("p_state").is_null()).len())
+        (pl.col("producer_key").filter((pl.col("p_state") != State.DONE) | pl.col("p_state").is_null()).len())
         .alias("missing_count"),
         pl.len().alias("count"),
     ).collect()
@@ -184,7 +184,7 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, probe:
     horizon = to_us(at - spec.recheck)
     has_files = any(isinstance(s, FileInput) for s in spec.inputs.values())
     need = (pl.lit(True) if recheck_all else
-            (pl.col("end_us") >= horizon) | pl.col("state").is_null() | (pl.col("state") == "failed"))
+            (pl.col("end_us") >= horizon) | pl.col("state").is_null() | (pl.col("state") == State.FAILED))
     probed = pl.DataFrame(schema={"in_hash": pl.String, "in_newest": pl.Int64, "in_waiting": pl.String})
     rows = pl.Series("i", [], dtype=pl.UInt32)
     if probe is not None and has_files:
@@ -212,7 +212,7 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, probe:
         .alias("running"),
     )
     query = frame.lazy()  # from here on one query, collected once at the end
-    done = pl.col("state") == "done"
+    done = pl.col("state") == State.DONE
     changed = [
         pl.when(done & ~pl.col("spec_ok")).then(pl.lit("spec")),
         pl.when(done & ~pl.col("code_ok")).then(pl.lit("code")),
@@ -225,7 +225,7 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, probe:
     self_chain = any(isinstance(s, JobInput) and s.job == job for s in spec.inputs.values())
     query = query.with_columns((~pl.col("up_current")).alias("pending"))
     if self_chain:
-        not_current = (pl.col("state") != "done") | pl.col("state").is_null() | (pl.col("reasons").list.len() > 0)
+        not_current = (pl.col("state") != State.DONE) | pl.col("state").is_null() | (pl.col("reasons").list.len() > 0)
         query = query.with_columns(
             (pl.col("pending") | not_current.cast(pl.Int8).cum_max().shift(1, fill_value=0).cast(pl.Boolean))
             .alias("pending"))
@@ -255,33 +255,33 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, probe:
     else:
         query = query.with_columns(pl.lit(False).alias("late"))
     state = (
-        pl.when(pl.col("running")).then(pl.lit("running"))
+        pl.when(pl.col("running")).then(pl.lit(State.RUNNING))
         .when(pl.col("state").is_null() & (pl.col("in_waiting").is_not_null() | ~pl.col("up_ready")))
-        .then(pl.lit("waiting"))
-        .when(pl.col("state").is_null()).then(pl.lit("missing"))
-        .when(pl.col("state") == "failed").then(pl.lit("failed"))
-        .when(pl.col("reasons").list.len() > 0).then(pl.lit("stale"))
-        .otherwise(pl.lit("done"))
+        .then(pl.lit(State.WAITING))
+        .when(pl.col("state").is_null()).then(pl.lit(State.MISSING))
+        .when(pl.col("state") == State.FAILED).then(pl.lit(State.FAILED))
+        .when(pl.col("reasons").list.len() > 0).then(pl.lit(State.STALE))
+        .otherwise(pl.lit(State.DONE))
     )
     query = query.with_columns(state.alias("state_now"))
     retry_left = pl.col("failures") <= retries
     backoff_ok = pl.col("_retry_at").is_null() | (pl.col("_retry_at") <= pl.lit(at))
-    failed_due = (pl.col("state_now") == "failed") & pl.col("in_waiting").is_null() & pl.col("up_ready") & (
+    failed_due = (pl.col("state_now") == State.FAILED) & pl.col("in_waiting").is_null() & pl.col("up_ready") & (
         retry_left & backoff_ok)
-    due = (pl.col("state_now") == "missing") | failed_due | (
-        (pl.col("state_now") == "stale") & pl.col("up_ready") & ~pl.col("pending"))
+    due = (pl.col("state_now") == State.MISSING) | failed_due | (
+        (pl.col("state_now") == State.STALE) & pl.col("up_ready") & ~pl.col("pending"))
     query = query.with_columns(due.alias("due"))
     reason = (
-        pl.when(pl.col("state_now") == "running").then(pl.lit("running in another process"))
-        .when(pl.col("state_now") == "waiting").then(pl.coalesce("in_waiting", "up_waiting"))
-        .when(pl.col("state_now") == "missing").then(pl.lit("never ran"))
-        .when((pl.col("state_now") == "failed") & pl.col("due"))
+        pl.when(pl.col("state_now") == State.RUNNING).then(pl.lit("running in another process"))
+        .when(pl.col("state_now") == State.WAITING).then(pl.coalesce("in_waiting", "up_waiting"))
+        .when(pl.col("state_now") == State.MISSING).then(pl.lit("never ran"))
+        .when((pl.col("state_now") == State.FAILED) & pl.col("due"))
         .then(pl.format("failed {} time(s); retry {} of {}", "failures", "failures", pl.lit(retries)))
-        .when((pl.col("state_now") == "failed") & retry_left & ~backoff_ok)
+        .when((pl.col("state_now") == State.FAILED) & retry_left & ~backoff_ok)
         .then(pl.format("failed; next retry after {}", "retry_at"))
-        .when(pl.col("state_now") == "failed")
+        .when(pl.col("state_now") == State.FAILED)
         .then(pl.format("failed {} time(s); no retries left (weir backfill retries it)", "failures"))
-        .when(pl.col("state_now") == "stale")
+        .when(pl.col("state_now") == State.STALE)
         .then(pl.lit("stale by ") + pl.col("reasons").list.join(", ")
               + pl.when(pl.col("pending")).then(pl.lit(" (pending upstream: may stay current once producers re-run)"))
               .otherwise(pl.lit("")))
@@ -291,7 +291,7 @@ def assess_job(ws: Workspace, job: str, at: datetime, snapshot: Snapshot, probe:
     return query.select(
         "window", "window_key", "start_us", "end_us", pl.col("state_now").alias("state"), "reasons", "pending",
         "due", "late", "failures", "seconds", "ingested_at", "reason", "output", "output_digest", "run_id",
-        "in_newest", pl.when((pl.col("state_now") == "failed") & retry_left).then(pl.col("retry_at"))
+        "in_newest", pl.when((pl.col("state_now") == State.FAILED) & retry_left).then(pl.col("retry_at"))
         .alias("retry_at"),
     ).collect()
 

@@ -11,8 +11,9 @@ from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 from typing import TYPE_CHECKING, Any
 
-from runner.core.assessment import STATES, parse_run_time
+from runner.core.assessment import parse_run_time
 from runner.core.graph import upstream_windows
+from runner.core.states import STATES, State
 from runner.core.windows import Cadence, Window
 from runner.core.workspace import Workspace
 from runner.model.spec import JobInput
@@ -150,7 +151,7 @@ def job_plans(ws: Workspace, assessed: dict[str, pl.DataFrame], cap: bool = Fals
     plans = []
     for job, frame in assessed.items():
         cad = ws.cadence(job)
-        counts = {s: 0 for s in STATES}
+        counts: dict[str, int] = {s: 0 for s in STATES}
         for row in frame.group_by("state").len().iter_rows():
             counts[row[0]] = row[1]
         due_rows = frame.filter(pl.col("due")).sort("start_us")
@@ -159,10 +160,10 @@ def job_plans(ws: Workspace, assessed: dict[str, pl.DataFrame], cap: bool = Fals
         if cap and limit is not None and due_rows.height > limit:
             held = due_rows.height - limit
             due_rows = due_rows.head(limit)
-        waiting_rows = frame.filter(pl.col("state") == "waiting").sort("start_us")
+        waiting_rows = frame.filter(pl.col("state") == State.WAITING).sort("start_us")
         due = [PlanItem(job, Window(from_us(s), from_us(e), cad.tz), st, r, lt)
                for s, e, st, r, lt in due_rows.select("start_us", "end_us", "state", "reason", "late").iter_rows()]
-        waiting = [PlanItem(job, Window(from_us(s), from_us(e), cad.tz), "waiting", r, lt)
+        waiting = [PlanItem(job, Window(from_us(s), from_us(e), cad.tz), State.WAITING, r, lt)
                    for s, e, r, lt in waiting_rows.select("start_us", "end_us", "reason", "late").iter_rows()]
         plans.append(JobPlan(job, due, waiting, counts, int(frame["late"].sum()), held))
     return plans
@@ -190,7 +191,7 @@ def stale_ranges(ws: Workspace, assessed: dict[str, pl.DataFrame]) -> list[Stale
     out = []
     for job, frame in assessed.items():
         cad = ws.cadence(job)
-        rows = frame.sort("start_us").filter(pl.col("state") == "stale").select(
+        rows = frame.sort("start_us").filter(pl.col("state") == State.STALE).select(
             "start_us", "end_us", pl.col("reasons").list.join(", ").alias("why"), "pending")
         if rows.height == 0:
             continue

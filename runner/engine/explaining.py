@@ -10,6 +10,7 @@ from __future__ import annotations
 from datetime import datetime
 from typing import TYPE_CHECKING, Any
 
+from runner.core.states import State, Status
 from runner.errors import WeirError
 from runner.model.spec import DatabaseInput
 from runner.model.timeutil import format_duration, format_instant
@@ -39,7 +40,7 @@ def explain_window(ws: Workspace, ledger: Ledger, job: str, window: Window, at: 
     out: dict[str, Any] = {"job": job, "window": window.id, "window_utc": window.key,
                            "end": format_instant(window.end, cad.tz), "length": format_duration(window.length)}
     if window.end + cad.settle > at:
-        out.update(state="not due", reason=f"due at {format_instant(window.end + cad.settle, cad.tz)}")
+        out.update(state=Status.NOT_DUE, reason=f"due at {format_instant(window.end + cad.settle, cad.tz)}")
         return out
     surveyed = survey(ws, ledger, at, [job], recheck_all=True, extras=True)
     if job in surveyed.unplanned:
@@ -65,7 +66,7 @@ def explain_window(ws: Workspace, ledger: Ledger, job: str, window: Window, at: 
             "late": bool(late_after is not None and lateness > late_after),
             "late_after": format_duration(late_after) if late_after else None,
         }
-    if state is not None and state["state"] in ("done", "failed") and state.get("fp_spec"):
+    if state is not None and state["state"] in (State.DONE, State.FAILED) and state.get("fp_spec"):
         prep = prepare(RunContext(ws=ws, ledger=ledger), job, window)
         spec_now, code_now = spec_and_code(ws, job)
         changes: dict[str, Any] = {}

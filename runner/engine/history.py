@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import TYPE_CHECKING, Any
 
 from runner.core.assessment import parse_run_time
+from runner.core.states import RunStatus
 from runner.model.timeutil import parse_utc
 
 if TYPE_CHECKING:
@@ -22,8 +23,8 @@ def run_history(ws: Workspace, ledger: Ledger, job: str, key: str | None, limit:
     rows = ledger.history(job, key, limit)
     live = ledger.claimed(job)
     for row in rows:
-        if row["status"] == "running" and (job, row["window_key"]) not in live:
-            row["status"] = "abandoned"  # no live claim: the process running it has ended
+        if row["status"] == RunStatus.RUNNING and (job, row["window_key"]) not in live:
+            row["status"] = RunStatus.ABANDONED  # no live claim: the process running it has ended
     late_after = ws.jobs[job].spec.late_after
     for row in rows:
         row["late"] = bool(late_after is not None and row.get("ingested_at") and row.get("window_end")

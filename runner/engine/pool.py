@@ -40,6 +40,7 @@ from multiprocessing.connection import Connection, wait
 from typing import Any
 
 from runner.core.planner import Task
+from runner.core.states import Status
 from runner.engine.context import RunContext
 from runner.engine.window import LOST, Attempt, Outcome, precheck, record_failure
 from runner.engine.workers import worker_main, worker_processes
@@ -138,7 +139,7 @@ class _Supervisor:
             raise
         finally:
             self._close()
-        return [o or Outcome(t.job, t.window.id, "not started", "stopped before it started")
+        return [o or Outcome(t.job, t.window.id, Status.NOT_STARTED, "stopped before it started")
                 for t, o in zip(self.tasks, self.outcomes, strict=True)]
 
     def _step(self) -> bool:
@@ -190,7 +191,7 @@ class _Supervisor:
                 continue  # reported `not started`
             t = self.tasks[i]
             if not self.force and t.window.key in self.recorded.get(t.job, ()) and precheck(self.ctx, t.job, t.window):
-                self._finish(i, Outcome(t.job, t.window.id, "skipped", "current: already done with this fingerprint"))
+                self._finish(i, Outcome(t.job, t.window.id, Status.SKIPPED, "current: already done with this fingerprint"))
             else:
                 self.queue.append((i, Attempt(t.job, t.window.key, 1, self.force)))
 
@@ -297,7 +298,7 @@ class _Supervisor:
         self.spent[i] = self.spent.get(i, 0.0) + outcome.seconds
         spec = self.ctx.ws.jobs[attempt.job].spec
         held = flight.fence if flight.fence is not None else attempt.fence
-        if (outcome.status == "failed" and attempt.number <= spec.retries and held is not None
+        if (outcome.status == Status.FAILED and attempt.number <= spec.retries and held is not None
                 and not self.stopping):
             delay = spec.retry_delay.total_seconds() * (2 ** (attempt.number - 1))
             self.last[i] = outcome
@@ -305,7 +306,7 @@ class _Supervisor:
                                  Attempt(attempt.job, attempt.window_key, attempt.number + 1, attempt.force, held)))
             return
         self.leases.forget(attempt.job, attempt.window_key)
-        if outcome.status == "failed" and held is not None and attempt.number <= spec.retries:
+        if outcome.status == Status.FAILED and held is not None and attempt.number <= spec.retries:
             with contextlib.suppress(Exception):  # stopping: the retry will not come, nor will the claim be needed
                 self.ctx.ledger.release(attempt.job, attempt.window_key, self.ctx.owner)
         outcome.seconds = self.spent[i]
@@ -316,11 +317,11 @@ class _Supervisor:
         if self.on_outcome is not None:
             self.on_outcome(self.tasks[i], outcome)
         for j in self.dependants[i]:
-            if outcome.status not in ("done", "skipped"):
+            if outcome.status not in (Status.DONE, Status.SKIPPED):
                 if self.outcomes[j] is None:
                     t = self.tasks[i]
                     reason = f"not run: {t.job} {t.window.id} {outcome.status}"
-                    self._finish(j, Outcome(self.tasks[j].job, self.tasks[j].window.id, "waiting", reason))
+                    self._finish(j, Outcome(self.tasks[j].job, self.tasks[j].window.id, Status.WAITING, reason))
                 continue
             self.remaining[j] -= 1
             if self.remaining[j] == 0 and self.outcomes[j] is None:
@@ -393,7 +394,7 @@ class _Supervisor:
                     self.ctx.ledger.abandon_run(flight.run_id, LOST)
             window_id = self.tasks[flight.task].window.id
             self.leases.forget(attempt.job, attempt.window_key)
-            self._ended(flight, Outcome(attempt.job, window_id, "claimed", LOST, flight.run_id, seconds=seconds))
+            self._ended(flight, Outcome(attempt.job, window_id, Status.CLAIMED, LOST, flight.run_id, seconds=seconds))
             return
 
         def claimed(fence: int, run_id: int, fingerprint: str | None) -> None:

@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import Any
 
 from runner.core import fingerprints as fp
+from runner.core.states import State
 from runner.core.windows import Window
 from runner.core.workspace import Workspace, producer_windows
 from runner.engine.context import RunContext
@@ -100,7 +101,7 @@ def prepare(ctx: RunContext, job: str, window: Window, database_entries: list[di
         for name, w in items:
             state = states.get(w.key)
             producers.append(Producer(name, pjob, w, state))
-            if state is None or state["state"] != "done":
+            if state is None or state["state"] != State.DONE:
                 not_done.append(w)
             else:
                 upstream.append({"input": name, "job": pjob, "window": w.key, "digest": state["output_digest"]})

@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
 
+from runner.core.states import State, Status
 from runner.core.workspace import Workspace
 
 
@@ -40,7 +41,7 @@ class TickResult:
 
     @property
     def failed(self) -> bool:
-        return self.ran and any(o.status == "failed" for o in self.outcomes)
+        return self.ran and any(o.status == Status.FAILED for o in self.outcomes)
 
     def as_dict(self) -> dict[str, Any]:
         head = {"ran": self.ran, "holder": self.holder, "counts": self.counts(),
@@ -80,7 +81,7 @@ def tick(ws: Workspace, at: datetime, *, ledger_url: str | None = None, workers:
             assessed = survey(ws, ledger, at, None)
             plans = job_plans(ws, assessed, cap=True)
             items = [i for p in plans for i in p.due]
-            if (not items and not any(p.counts.get("running") for p in plans) and not assessed.unplanned
+            if (not items and not any(p.counts.get(State.RUNNING) for p in plans) and not assessed.unplanned
                     and gate.ledger_stat(ws.root, ledger_url) == before):
                 idle = assessed  # nothing due, nobody mid-window, no write while planning: may stop early
             # waiting windows whose producers run in this tick go along; they run if those finish

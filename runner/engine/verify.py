@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING, Any
 
+from runner.core.states import State, Verdict
 from runner.errors import WeirError
 
 if TYPE_CHECKING:
@@ -23,17 +24,17 @@ def verify_outputs(ws: Workspace, ledger: Ledger, jobs: list[str]) -> list[dict[
 
     problems = []
     for job in ws.select(jobs):
-        states = ledger.states(job).filter(pl.col("state") == "done")
-        bad: dict[str, list[str]] = {"missing": [], "changed": [], "unreadable": []}
+        states = ledger.states(job).filter(pl.col("state") == State.DONE)
+        bad: dict[str, list[str]] = {Verdict.MISSING: [], Verdict.CHANGED: [], Verdict.UNREADABLE: []}
         fine: list[str] = []
         broken: str | None = None  # why the job's output database cannot be read, once found
         for row in states.iter_rows(named=True):
             if broken is None:
                 verdict, detail = _verify_output(ws, job, row)
-                if verdict == "unreadable" and ws.jobs[job].spec.output.path is None:
+                if verdict == Verdict.UNREADABLE and ws.jobs[job].spec.output.path is None:
                     broken = detail
             else:
-                verdict, detail = "unreadable", broken
+                verdict, detail = Verdict.UNREADABLE, broken
             if verdict:
                 bad[verdict].append(row["window_key"])
                 problems.append({"job": job, "window": row["window_id"], "output": row["output"],
@@ -61,27 +62,27 @@ def _verify_output(ws: Workspace, job: str, row: dict[str, Any]) -> tuple[str | 
     if out.path is not None:
         path = ws.root / row["output"]
         if not path.exists():
-            return "missing", None
+            return Verdict.MISSING, None
         try:
             same = not row["output_checksum"] or file_sha256(path) == row["output_checksum"]
         except OSError as exc:
-            return "unreadable", exc.strerror or str(exc)
-        return (None if same else "changed"), None
+            return Verdict.UNREADABLE, exc.strerror or str(exc)
+        return (None if same else Verdict.CHANGED), None
     assert out.database is not None and out.table is not None  # a table output
     url = database_url(ws.root, out.database)
     try:
         digest = read_table_digest(url, out.table, row["window_key"])
         if digest is None:
-            return "missing", None
+            return Verdict.MISSING, None
         if digest == row["output_digest"]:
             return None, None
         if table_rows(url, out.table, [row["window_key"]]).height == 0:
-            return "missing", None  # the window's rows were deleted (a run that wrote none matches)
-        return "changed", None
+            return Verdict.MISSING, None  # the window's rows were deleted (a run that wrote none matches)
+        return Verdict.CHANGED, None
     except sa.exc.OperationalError as exc:  # locked, cannot connect: the database is there, not reachable now
         raise WeirError(f"cannot read table {out.table} of job {job}: {_first_line(exc)}") from None
     except sa.exc.DatabaseError as exc:  # not a database, malformed: the output is damaged
-        return "unreadable", _first_line(exc)
+        return Verdict.UNREADABLE, _first_line(exc)
 
 
 def _first_line(exc: BaseException) -> str:

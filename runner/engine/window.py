@@ -28,6 +28,7 @@ from typing import Any
 from runner import __version__
 from runner.core import fingerprints as fp
 from runner.core.paths import database_url, render
+from runner.core.states import RunStatus, State, Status
 from runner.core.windows import Window
 from runner.core.workspace import Workspace
 from runner.engine.context import RunContext
@@ -101,7 +102,7 @@ def precheck(ctx: RunContext, job: str, window: Window) -> bool:
     except (WeirError, OSError):
         return False
     current = ctx.ledger.state_row(job, window.key)
-    if current is None or current["state"] != "done" or current.get("output_state"):
+    if current is None or current["state"] != State.DONE or current.get("output_state"):
         return False
     return prep.waiting is None and prep.fingerprint == current["fingerprint"]
 
@@ -142,33 +143,33 @@ def run_attempt(ctx: RunContext, attempt: Attempt,
         if prep.waiting:
             if fence is not None:
                 ctx.ledger.release(job, window.key, ctx.owner)
-            return _timed(Outcome(job, window.id, "waiting", prep.waiting), t0)
+            return _timed(Outcome(job, window.id, Status.WAITING, prep.waiting), t0)
         values, texts = _run_values(ctx, job, window, prep, attempt.number, force), _texts(prep)
         if fence is None:
             status, run_id = ctx.ledger.begin_run(job, window.key, ctx.owner, ctx.lease,
                                                   None if force else prep.fingerprint, values, texts)
-            if status == "claimed":
-                return _timed(Outcome(job, window.id, "claimed", "another process is running this window"), t0)
+            if status == Status.CLAIMED:
+                return _timed(Outcome(job, window.id, Status.CLAIMED, "another process is running this window"), t0)
             if status == "current":
-                return _timed(Outcome(job, window.id, "skipped", "current: already done with this fingerprint"), t0)
+                return _timed(Outcome(job, window.id, Status.SKIPPED, "current: already done with this fingerprint"), t0)
             assert run_id is not None
             fence = run_id
         else:
             current = ctx.ledger.state_row(job, window.key)
-            if (not force and current is not None and current["state"] == "done"
+            if (not force and current is not None and current["state"] == State.DONE
                     and current["fingerprint"] == prep.fingerprint and not current.get("output_state")):
                 ctx.ledger.release(job, window.key, ctx.owner)
-                return _timed(Outcome(job, window.id, "skipped", "current: already done with this fingerprint"), t0)
+                return _timed(Outcome(job, window.id, Status.SKIPPED, "current: already done with this fingerprint"), t0)
             run_id = ctx.ledger.start_run(values, texts, ctx.owner, fence, ctx.lease)
             if run_id is None:
-                return _timed(Outcome(job, window.id, "claimed", LOST), t0)
+                return _timed(Outcome(job, window.id, Status.CLAIMED, LOST), t0)
         if on_claim is not None:
             on_claim(fence, run_id, prep.fingerprint)
         return _timed(_execute(ctx, job, window, prep, run_id, fence, stats, db_frames, t0), t0)
     except ClaimLost:
         if run_id is not None:
             ctx.ledger.abandon_run(run_id, LOST)
-        return _timed(Outcome(job, window.id, "claimed", LOST, run_id), t0)
+        return _timed(Outcome(job, window.id, Status.CLAIMED, LOST, run_id), t0)
     except Exception as exc:  # noqa: BLE001 - every failure is recorded, none escapes
         outcome = record_failure(ctx, attempt, error_text(exc), run_id=run_id, fence=fence, fingerprint=fingerprint,
                                  stats=stats, exc=exc, seconds=time.perf_counter() - t0, on_claim=on_claim)
@@ -268,21 +269,21 @@ def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: 
         rows, digest = sinks.write_table(database_url(ws.root, out.database), out.table, frame, window.key)
         location, checksum = f"table {out.table}", None
     finished = {
-        "status": "done", "seconds": time.perf_counter() - t0, "step_seconds": step_seconds,
+        "status": RunStatus.DONE, "seconds": time.perf_counter() - t0, "step_seconds": step_seconds,
         "rows_read": stats.rows_read if stats.counted else None, "rows_dropped": stats.rows_dropped,
         "rows_rejected": stats.rows_rejected, "rows_written": rows, "output": location,
         "output_digest": digest, "output_checksum": checksum,
     }
     state = {
-        "window_end": Window(window.end, window.end, window.tz).key, "window_id": window.id, "state": "done",
+        "window_end": Window(window.end, window.end, window.tz).key, "window_id": window.id, "state": State.DONE,
         "fingerprint": prep.fingerprint, **{f"fp_{c}": prep.parts[c].hash for c in fp.COMPONENTS},
         "output": location, "output_digest": digest, "output_checksum": checksum,
         "ingested_at": _ingested(prep), "seconds": finished["seconds"], "last_fingerprint": prep.fingerprint,
         "output_state": None,
     }
     if not ctx.ledger.finish_run(run_id, job, window.key, ctx.owner, fence, finished, state, release=True):
-        return Outcome(job, window.id, "claimed", LOST, run_id)
-    return Outcome(job, window.id, "done", "ran", run_id, step_seconds=step_seconds, rows_written=rows)
+        return Outcome(job, window.id, Status.CLAIMED, LOST, run_id)
+    return Outcome(job, window.id, Status.DONE, "ran", run_id, step_seconds=step_seconds, rows_written=rows)
 
 
 def _confirm(ctx: RunContext, job: str, window: Window, fence: int) -> None:
@@ -353,7 +354,7 @@ def _previous_output(ctx: RunContext, job: str, window: Window) -> Any:
     if earlier is None:
         return None
     state = ctx.ledger.state_row(job, earlier.key)
-    if state is None or state["state"] != "done" or not state.get("output"):
+    if state is None or state["state"] != State.DONE or not state.get("output"):
         return None
     import polars as pl
 
@@ -440,32 +441,32 @@ def record_failure(ctx: RunContext, attempt: Attempt, message: str, run_id: int 
     if run_id is None and fence is not None:
         run_id = ctx.ledger.start_run(values, texts, ctx.owner, fence, ctx.lease)
         if run_id is None:
-            return Outcome(job, window.id, "claimed", LOST, error=message)
+            return Outcome(job, window.id, Status.CLAIMED, LOST, error=message)
     elif run_id is None:
         status, run_id = ctx.ledger.begin_run(job, window.key, ctx.owner, ctx.lease, None, values, texts)
         if status != "started" or run_id is None:
-            return Outcome(job, window.id, "claimed", "another process is running this window", error=message)
+            return Outcome(job, window.id, Status.CLAIMED, "another process is running this window", error=message)
         fence = run_id
         if on_claim is not None:
             on_claim(fence, run_id, fingerprint)
     assert fence is not None
     finished = {
-        "status": "failed", "seconds": seconds, "error": message,
+        "status": RunStatus.FAILED, "seconds": seconds, "error": message,
         "failed_check": exc.check if isinstance(exc, CheckFailed) else None,
         "rows_read": stats.rows_read if stats is not None and stats.counted else None,
         "rows_dropped": stats.rows_dropped if stats is not None else None,
         "rows_rejected": stats.rows_rejected if stats is not None else None,
     }
     reason = message
-    state: dict[str, Any] | None = {"window_end": end_key, "window_id": window.id, "state": "failed",
+    state: dict[str, Any] | None = {"window_end": end_key, "window_id": window.id, "state": State.FAILED,
                                     "seconds": seconds}
     if attempt.force and fingerprint is not None and _intact_and_current(ctx, job, window, fingerprint):
         state = None
         reason = f"{message} (the previous output is intact and current: the window stays done)"
     final = attempt.number > ctx.ws.jobs[job].spec.retries
     if not ctx.ledger.finish_run(run_id, job, window.key, ctx.owner, fence, finished, state, release=final):
-        return Outcome(job, window.id, "claimed", LOST, run_id, error=message)
-    return Outcome(job, window.id, "failed", reason, run_id, error=message)
+        return Outcome(job, window.id, Status.CLAIMED, LOST, run_id, error=message)
+    return Outcome(job, window.id, Status.FAILED, reason, run_id, error=message)
 
 
 def _intact_and_current(ctx: RunContext, job: str, window: Window, fingerprint: str) -> bool:
@@ -474,7 +475,7 @@ def _intact_and_current(ctx: RunContext, job: str, window: Window, fingerprint: 
     from runner.io.outputs import read_table_digest
 
     state = ctx.ledger.state_row(job, window.key)
-    if (state is None or state["state"] != "done" or state.get("output_state")
+    if (state is None or state["state"] != State.DONE or state.get("output_state")
             or state["fingerprint"] != fingerprint or not state.get("output")):
         return False
     out = ctx.ws.jobs[job].spec.output

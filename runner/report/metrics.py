@@ -38,6 +38,8 @@ import math
 from datetime import UTC, datetime
 from typing import TYPE_CHECKING
 
+from runner.core.states import RunStatus, State
+
 if TYPE_CHECKING:
     from runner.core.workspace import Workspace
     from runner.io.ledger.store import Ledger
@@ -119,7 +121,7 @@ def _light_views(ws: Workspace, ledger: Ledger, at: datetime) -> ReportData:
             view.late = int(frame["late"].sum()) if frame.height else 0
             view.overdue = int(frame["overdue"].sum()) if frame.height else 0
             view.watermark_us, k = reach(frame)
-            view.behind = {"any": int((frame.head(k)["state"] != "done").sum())} if k else {}
+            view.behind = {"any": int((frame.head(k)["state"] != State.DONE).sum())} if k else {}
             view.dropped_rows = dropped.get(name, 0)
         views.append(view)
     zone, note = axis_zone(ws)
@@ -177,7 +179,7 @@ def metrics_text(ws: Workspace, ledger: Ledger, at: datetime, data: ReportData |
         if last is not None:
             duration.add(last["seconds"], job=job)
             last_at.add(_epoch(last["finished_at"]), job=job)
-            last_failed.add(1 if last["status"] == "failed" else 0, job=job)
+            last_failed.add(1 if last["status"] == RunStatus.FAILED else 0, job=job)
     change = Family("weir_next_change_timestamp_seconds",
                     "Unix time at which the clock alone next changes the plan (a window comes due or a retry is allowed).")
     change.add(data.next_change.timestamp() if data.next_change is not None else None)

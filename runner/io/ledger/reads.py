@@ -12,6 +12,7 @@ from typing import TYPE_CHECKING, Any
 
 import sqlalchemy as sa
 
+from runner.core.states import RunStatus, State
 from runner.io.databases import rows_frame
 from runner.io.ledger.schema import STATE_COLUMNS, STATE_ROW, runs, state_schema, windows
 
@@ -62,8 +63,8 @@ class LedgerReads:
         import polars as pl
 
         c = windows.c
-        not_done = c.state != "done"
-        flags = (sa.case((c.state == "done", 1), (c.state == "failed", 2), else_=3)
+        not_done = c.state != State.DONE
+        flags = (sa.case((c.state == State.DONE, 1), (c.state == State.FAILED, 2), else_=3)
                  + sa.case((c.fp_spec == spec_hash, 4), else_=0) + sa.case((c.fp_code == code_hash, 8), else_=0)
                  + sa.case((c.output_state.is_(None), 0), else_=16))
         columns: list[tuple[str, Any, Any]] = [
@@ -93,11 +94,11 @@ class LedgerReads:
                 rows = conn.execute(sa.select(*[e.label(n) for n, e, _ in columns])
                                     .where(c.job == job)).cursor.fetchall()
                 few = conn.execute(sa.select(*[e.label(n) for n, e, _ in detail_columns]).where(
-                    c.job == job, sa.or_(c.state == "failed", c.output_state.is_not(None)))).cursor.fetchall()
+                    c.job == job, sa.or_(c.state == State.FAILED, c.output_state.is_not(None)))).cursor.fetchall()
             main, details = _frame(rows, columns), _frame(few, detail_columns)
         code = pl.col("flags") % 4
         main = main.with_columns(
-            pl.when(code == 1).then(pl.lit("done")).when(code == 2).then(pl.lit("failed"))
+            pl.when(code == 1).then(pl.lit(State.DONE)).when(code == 2).then(pl.lit(State.FAILED))
             .otherwise(pl.lit("other")).alias("state"),
             ((pl.col("flags") // 4) % 2 == 1).alias("spec_ok"),
             ((pl.col("flags") // 8) % 2 == 1).alias("code_ok"),
@@ -140,7 +141,7 @@ class LedgerReads:
             return set()
         with self._tx(read=True) as conn:
             rows = conn.execute(sa.select(windows.c.window_key).where(
-                windows.c.job == job, windows.c.state == "done", windows.c.output_state.is_(None))).all()
+                windows.c.job == job, windows.c.state == State.DONE, windows.c.output_state.is_(None))).all()
         return {r[0] for r in rows}
 
     def run(self, run_id: int) -> dict[str, Any] | None:
@@ -173,7 +174,7 @@ class LedgerReads:
                   "started_at": pl.String}
         if self.engine is None:
             return pl.DataFrame(schema=schema)
-        q = sa.select(*[runs.c[c] for c in cols]).where(runs.c.job == job, runs.c.status.in_(["done", "failed"]))
+        q = sa.select(*[runs.c[c] for c in cols]).where(runs.c.job == job, runs.c.status.in_([RunStatus.DONE, RunStatus.FAILED]))
         with self._tx(read=True) as conn:
             rows = conn.execute(q).all()
         return rows_frame(rows, schema)
@@ -183,9 +184,9 @@ class LedgerReads:
         if self.engine is None:
             return {}
         out: dict[str, dict[str, Any]] = {}
-        finished = runs.c.status.in_(["done", "failed"])
+        finished = runs.c.status.in_([RunStatus.DONE, RunStatus.FAILED])
         with self._tx(read=True) as conn:
-            q = sa.select(runs.c.job, sa.func.max(runs.c.finished_at)).where(runs.c.status == "done")
+            q = sa.select(runs.c.job, sa.func.max(runs.c.finished_at)).where(runs.c.status == RunStatus.DONE)
             for job, when in conn.execute(q.group_by(runs.c.job)):
                 out.setdefault(job, {})["success"] = when
             jobs = [r[0] for r in conn.execute(sa.select(runs.c.job).where(finished).distinct())]

@@ -42,6 +42,7 @@ from typing import TYPE_CHECKING, Any
 import sqlalchemy as sa
 from sqlalchemy import exc as sa_exc
 
+from runner.core.states import RunStatus, State, Status
 from runner.errors import LedgerError
 from runner.io.ledger.reads import LedgerReads
 from runner.io.ledger.schema import (
@@ -69,8 +70,8 @@ _b = sa.bindparam
 _INSERT_RUN = sa.insert(runs)
 _UPDATE_RUN = sa.update(runs).where(runs.c.id == _b("b_run_id"))
 _ABANDON_RUNS = sa.update(runs).where(
-    runs.c.job == _b("b_job"), runs.c.window_key == _b("b_key"), runs.c.status == "running",
-    runs.c.id < _b("b_run_id")).values(status="abandoned")
+    runs.c.job == _b("b_job"), runs.c.window_key == _b("b_key"), runs.c.status == RunStatus.RUNNING,
+    runs.c.id < _b("b_run_id")).values(status=RunStatus.ABANDONED)
 _RUN_FINGERPRINT = sa.select(runs.c.fingerprint).where(runs.c.id == _b("b_run_id"))
 _UPDATE_WINDOW = sa.update(windows).where(windows.c.job == _b("b_job"), windows.c.window_key == _b("b_key"))
 _INSERT_WINDOW = sa.insert(windows)
@@ -242,8 +243,8 @@ class Ledger(LedgerReads):
             held = conn.execute(sa.select(claims.c.job, claims.c.window_key).where(claims.c.owner == owner)).all()
             for job, key in held:
                 conn.execute(sa.update(runs).where(runs.c.job == job, runs.c.window_key == key,
-                                                   runs.c.status == "running")
-                             .values(status="abandoned", finished_at=utc_text(), error=reason))
+                                                   runs.c.status == RunStatus.RUNNING)
+                             .values(status=RunStatus.ABANDONED, finished_at=utc_text(), error=reason))
             return conn.execute(sa.delete(claims).where(claims.c.owner == owner)).rowcount
 
     def confirm(self, job: str, key: str, owner: str, fence: int, lease: float) -> bool:
@@ -347,21 +348,21 @@ class Ledger(LedgerReads):
         try:
             with self._tx() as conn:
                 if not self._take_claim(conn, job, key, owner, lease):
-                    return "claimed", None
+                    return Status.CLAIMED, None
                 if fingerprint is not None:
                     state = conn.execute(STATE_ROW, where).mappings().first()
-                    if (state is not None and state["state"] == "done" and state["fingerprint"] == fingerprint
+                    if (state is not None and state["state"] == State.DONE and state["fingerprint"] == fingerprint
                             and not state["output_state"]):
                         raise _Current
                 self.put_texts(conn, stored)
-                row = {"status": "running", "started_at": utc_text(), "host": socket.gethostname(),
+                row = {"status": RunStatus.RUNNING, "started_at": utc_text(), "host": socket.gethostname(),
                        "pid": os.getpid(), **values}
                 run_id = _inserted_id(conn.execute(_INSERT_RUN, row))
                 conn.execute(_SET_FENCE, {**where, "b_owner": owner, "b_fence": run_id})
         except _Current:
             return "current", None  # rolled back: the claim was never taken
         except sa_exc.IntegrityError:
-            return "claimed", None  # another process inserted the claim first (databases without a write lock)
+            return Status.CLAIMED, None  # another process inserted the claim first (databases without a write lock)
         return "started", run_id
 
     def start_run(self, values: dict[str, Any], stored: Iterable[tuple[str, str, str]], owner: str,
@@ -371,7 +372,7 @@ class Ledger(LedgerReads):
         None (nothing recorded) when the claim was lost meanwhile.
         """
         row = {
-            "status": "running", "started_at": utc_text(), "host": socket.gethostname(), "pid": os.getpid(),
+            "status": RunStatus.RUNNING, "started_at": utc_text(), "host": socket.gethostname(), "pid": os.getpid(),
             **values,
         }
         with self._tx() as conn:
@@ -400,7 +401,7 @@ class Ledger(LedgerReads):
             ).with_for_update(), {**where, "b_owner": owner, "b_fence": fence}).first() is not None
             if not held:
                 lost = "the claim was lost to another runner before this run finished; its result was discarded"
-                conn.execute(_UPDATE_RUN, {"b_run_id": run_id, **values, "status": "abandoned",
+                conn.execute(_UPDATE_RUN, {"b_run_id": run_id, **values, "status": RunStatus.ABANDONED,
                                            "error": values.get("error") or lost})
                 return False
             conn.execute(_UPDATE_RUN, {"b_run_id": run_id, **values})
@@ -415,8 +416,8 @@ class Ledger(LedgerReads):
     def abandon_run(self, run_id: int, reason: str) -> None:
         """Record a run that will not finish (its runner was interrupted) as `abandoned`."""
         with self._tx() as conn:
-            conn.execute(sa.update(runs).where(runs.c.id == run_id, runs.c.status == "running").values(
-                status="abandoned", finished_at=utc_text(), error=reason))
+            conn.execute(sa.update(runs).where(runs.c.id == run_id, runs.c.status == RunStatus.RUNNING).values(
+                status=RunStatus.ABANDONED, finished_at=utc_text(), error=reason))
 
     def _write_state(self, conn: sa.Connection, run_id: int, job: str, key: str, values: dict[str, Any],
                      window: dict[str, Any]) -> None:
@@ -425,7 +426,7 @@ class Ledger(LedgerReads):
         state.update(job=job, window_key=key, run_id=run_id, finished_at=values["finished_at"])
         if "last_fingerprint" not in state:
             state["last_fingerprint"] = conn.execute(_RUN_FINGERPRINT, {"b_run_id": run_id}).scalar()
-        if state["state"] == "failed":
+        if state["state"] == State.FAILED:
             current = conn.execute(STATE_ROW, where).mappings().first()
             if current is not None:
                 # keep the last good output's identity: consumers and digests still refer to it
