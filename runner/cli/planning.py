@@ -2,10 +2,13 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 import click
 
 from runner.cli.options import Context, at_option, clock, json_option, workers_option
-from runner.cli.render import blank_if_none, emit_json, exit_if_unplanned, make_console, plan_ranges
+from runner.cli.render import blank_if_none, emit_json, exit_if_unplanned, make_console
+from runner.core.ranges import runs
 from runner.core.states import RunStatus
 
 
@@ -39,10 +42,10 @@ def plan(obj: Context, jobs: tuple[str, ...], at: str | None, as_json: bool) -> 
         summary = ", ".join(f"{k} {v}" for k, v in c.items() if v) or "no due windows yet"
         late = f", late {p['late']}" if p["late"] else ""
         console.print(f"[bold]{p['job']}[/]  {len(p['due'])} to run, {len(p['waiting'])} waiting  ({summary}{late})")
-        for first, last, n in plan_ranges(p["due"]):
+        for first, last, n in runs(p["due"], _said):
             span = first["window"] if n == 1 else f"{first['window']} .. {last['window']}"
             console.print(f"  run     {span}  {n} window(s)  {first['reason']}")
-        for first, last, n in plan_ranges(p["waiting"]):
+        for first, last, n in runs(p["waiting"], _said):
             span = first["window"] if n == 1 else f"{first['window']} .. {last['window']}"
             console.print(f"  waiting {span}  {n} window(s)  {first['reason']}")
         total += len(p["due"])
@@ -177,3 +180,8 @@ def impact(obj: Context, at: str | None, workers: int | None, as_json: bool) -> 
     console.print(table)
     console.print(f"{sum(r['windows'] for r in rows)} window(s) would be recomputed, about {total:.1f}s")
     exit_if_unplanned({r["job"]: r["error"] for r in rows if "error" in r})
+
+
+def _said(item: dict[str, Any]) -> tuple[str, str]:
+    """What a plan line says of a window: its state and reason (a range shares both)."""
+    return item["state"], item["reason"]

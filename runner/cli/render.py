@@ -63,18 +63,6 @@ def blank_if_none(value: Any) -> str:
     return "" if value is None else str(value)
 
 
-def plan_ranges(items: list[dict[str, Any]]) -> list[tuple[dict[str, Any], dict[str, Any], int]]:
-    """Group consecutive plan items with the same state and reason: (first, last, count)."""
-    out: list[list[Any]] = []
-    for item in items:
-        if out and out[-1][1]["reason"] == item["reason"] and out[-1][1]["state"] == item["state"]:
-            out[-1][1] = item
-            out[-1][2] += 1
-        else:
-            out.append([item, item, 1])
-    return [(a, b, n) for a, b, n in out]
-
-
 def exit_if_unplanned(unplanned: dict[str, str]) -> None:
     """One line per job that could not be planned, on stderr, then exit status 1 (none: return)."""
     for job, why in unplanned.items():

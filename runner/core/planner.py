@@ -13,6 +13,7 @@ from typing import TYPE_CHECKING, Any
 
 from runner.core.assessment import parse_run_time
 from runner.core.graph import upstream_windows
+from runner.core.ranges import range_numbers
 from runner.core.states import STATES, State
 from runner.core.windows import Cadence, Window
 from runner.core.workspace import Workspace
@@ -196,9 +197,7 @@ def stale_ranges(ws: Workspace, assessed: dict[str, pl.DataFrame]) -> list[Stale
         if rows.height == 0:
             continue
         # a new range starts where the reasons change or the windows stop touching
-        breaks = ((pl.col("start_us") != pl.col("end_us").shift(1)) | (pl.col("why") != pl.col("why").shift(1))
-                  | (pl.col("pending") != pl.col("pending").shift(1))).fill_null(True)
-        grouped = rows.with_columns(breaks.cast(pl.Int64).cum_sum().alias("g")).group_by("g", maintain_order=True).agg(
+        grouped = rows.with_columns(range_numbers("why", "pending").alias("g")).group_by("g", maintain_order=True).agg(
             pl.col("start_us").first(), pl.col("end_us").last(), pl.len().alias("n"), pl.col("why").first(),
             pl.col("pending").first())
         for s_us, e_us, n, why, pending in grouped.select("start_us", "end_us", "n", "why", "pending").iter_rows():

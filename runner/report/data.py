@@ -24,6 +24,7 @@ from datetime import datetime, timedelta
 from typing import TYPE_CHECKING, Any, cast
 from zoneinfo import ZoneInfo
 
+from runner.core.ranges import range_numbers
 from runner.model.timeutil import format_instant, from_us, to_us
 from runner.report.encoding import deltas, rle, vlq
 
@@ -265,9 +266,7 @@ def problem_groups(job: str, frame: pl.DataFrame, tz: ZoneInfo) -> list[Problem]
                .then(pl.col("run_error")).otherwise(pl.col("reason")))
     f = frame.select("start_us", "end_us", "state", "overdue", example.alias("example"), _kind().alias("kind"))
     # a new range where the kind changes or the windows stop touching (done windows break ranges too)
-    f = f.with_columns(
-        ((pl.col("kind") != pl.col("kind").shift(1)) | (pl.col("start_us") != pl.col("end_us").shift(1)))
-        .fill_null(True).cum_sum().alias("range")).filter(pl.col("kind") != "")
+    f = f.with_columns(range_numbers("kind").alias("range")).filter(pl.col("kind") != "")
     if f.height == 0:
         return []
     ranges = f.group_by("range", maintain_order=True).agg(
