@@ -76,7 +76,9 @@ def _describe(entry: dict[str, Any] | None) -> str | None:
         return f"{entry.get('rows')} rows, digest {entry['digest'][:12]}"
     from datetime import UTC, datetime
 
-    when = datetime.fromtimestamp(entry["mtime_ns"] / 1e9, UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+    from runner.model.timeutil import format_utc
+
+    when = format_utc(datetime.fromtimestamp(entry["mtime_ns"] / 1e9, UTC))
     return f"{entry['size']} bytes, modified {when}"
 
 

@@ -37,7 +37,7 @@ from pydantic import (
 
 from runner.errors import Problem, SpecProblems
 from runner.model.fields import Duration, Identifier, Model, Text
-from runner.model.loading import child_type
+from runner.model.loading import allowed_keys
 from runner.model.timeutil import short_duration
 from runner.model.yamlfile import Marked, dotted
 
@@ -194,7 +194,7 @@ def located(
         where, on_key = at + loc, False
         if error["type"] == "extra_forbidden":
             on_key, name = True, str(loc[-1])
-            allowed = sorted(_keys(root, loc[:-1]))
+            allowed = sorted(allowed_keys(loc[:-1], root))
             close = difflib.get_close_matches(name, allowed, n=1, cutoff=0.6)
             hint = f"did you mean {close[0]!r}?" if close else f"allowed: {', '.join(allowed)}"
             message = f"unknown key {name!r} ({hint})"
@@ -208,13 +208,3 @@ def located(
         line, col = marked.where(where, key=on_key)
         out.add(Problem(shown, line, col, dotted(at + loc), message))
     return sorted(out)
-
-
-def _keys(root: type[BaseModel], loc: tuple[Any, ...]) -> set[str]:
-    """The keys a mapping at `loc` below `root` may have."""
-    model: Any = root
-    for part in loc:
-        model = child_type(model, part)
-    if isinstance(model, type) and issubclass(model, BaseModel):
-        return {info.alias or name for name, info in model.model_fields.items()}
-    return set()

@@ -134,7 +134,7 @@ def _problems_from(exc: ValidationError, marked: Marked, shown: str,
         if kind == "extra_forbidden":
             at_key = True
             field_name = str(loc[-1])
-            allowed = _allowed_keys(error["loc"][:-1], model or JobSpec)
+            allowed = allowed_keys(error["loc"][:-1], model or JobSpec)
             close = difflib.get_close_matches(field_name, sorted(allowed), n=1, cutoff=0.6)
             hint = f" (did you mean {close[0]!r}?)" if close else (
                 f" (allowed: {', '.join(sorted(allowed))})" if allowed else ""
@@ -183,7 +183,7 @@ def _data_path(loc: tuple[Any, ...], data: Any, keep_missing: bool = False) -> l
     return path
 
 
-def _allowed_keys(loc: tuple[Any, ...], top: type[BaseModel]) -> set[str]:
+def allowed_keys(loc: tuple[Any, ...], top: type[BaseModel]) -> set[str]:
     """The keys allowed at a pydantic location (for 'did you mean')."""
     model: Any = top
     for part in loc:
