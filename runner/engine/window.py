@@ -207,8 +207,8 @@ def _execute(ctx: RunContext, job: str, window: Window, prep: Prepared, run_id: 
     import polars as pl
 
     from runner.engine import steps
+    from runner.engine.checks import check_output
     from runner.io import outputs as sinks
-    from runner.io.casts import check_output
     from runner.io.readers import file_frame
 
     ws = ctx.ws
@@ -371,7 +371,7 @@ def _previous_output(ctx: RunContext, job: str, window: Window) -> Any:
 
 def error_text(exc: BaseException) -> str:
     """One or two lines for the ledger and the terminal; the traceback goes to the log."""
-    from runner.io.casts import CheckFailed
+    from runner.engine.checks import CheckFailed
 
     if isinstance(exc, CheckFailed):
         return str(exc)
@@ -408,8 +408,8 @@ def record_failure(ctx: RunContext, attempt: Attempt, message: str, run_id: int 
     window whose previous output is intact and current leaves the window done
     (the failed attempt stays in its history).
     """
+    from runner.engine.checks import CheckFailed
     from runner.errors import WeirError
-    from runner.io.casts import CheckFailed
     from runner.io.outputs import open_append
 
     job = attempt.job
