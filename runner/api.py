@@ -35,6 +35,7 @@ if TYPE_CHECKING:
     from runner.core.windows import Window
     from runner.core.workspace import Workspace
     from runner.engine.pulse import TickResult
+    from runner.engine.verify import OutputProblem
     from runner.engine.window import Outcome
     from runner.io.ledger.store import Ledger
     from runner.scaffold.demo import LandingSummary
@@ -548,9 +549,9 @@ def impact(root: Root, *, at: datetime, ledger: str | None = None, workers: int 
     return out
 
 
-def verify(root: Root, *, jobs: list[str], ledger: str | None = None) -> list[dict[str, Any]]:
+def verify(root: Root, *, jobs: list[str], ledger: str | None = None) -> list[OutputProblem]:
     """Re-read every done window's output; report (and mark stale by output) missing, changed or
-    unreadable ones: [{job, window, output, problem, detail}]."""
+    unreadable ones."""
     from runner.engine.verify import verify_outputs
 
     ws = _load(root)

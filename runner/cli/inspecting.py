@@ -58,11 +58,11 @@ def verify(obj: Context, jobs: tuple[str, ...], as_json: bool) -> None:
 
     problems = api.verify(obj.root, jobs=list(jobs), ledger=obj.ledger)
     if as_json:
-        emit_json(problems)
+        emit_json([p.as_dict() for p in problems])
     else:
         for p in problems:
-            detail = f"  ({p['detail']})" if p.get("detail") else ""
-            click.echo(f"{p['problem']:<8} {p['job']} {p['window']}  {p['output']}{detail}")
+            detail = f"  ({p.detail})" if p.detail else ""
+            click.echo(f"{p.problem:<8} {p.job} {p.window}  {p.output}{detail}")
         click.echo(f"{len(problems)} output problem(s)" + (" (now stale by output)" if problems else ""))
     if problems:
         sys.exit(1)

@@ -7,6 +7,7 @@ windows marked stale by output, so the next tick or backfill restores them.
 
 from __future__ import annotations
 
+from dataclasses import asdict, dataclass
 from typing import TYPE_CHECKING, Any
 
 from runner.core.states import State, Verdict
@@ -17,15 +18,29 @@ if TYPE_CHECKING:
     from runner.io.ledger.store import Ledger
 
 
-def verify_outputs(ws: Workspace, ledger: Ledger, jobs: list[str]) -> list[dict[str, Any]]:
+@dataclass
+class OutputProblem:
+    """A done window whose output is not what the ledger recorded."""
+
+    job: str
+    window: str  # the window's id
+    output: str  # the output as recorded (a path, or the table)
+    problem: Verdict
+    detail: str | None  # why it cannot be read, when that is the problem
+
+    def as_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+
+def verify_outputs(ws: Workspace, ledger: Ledger, jobs: list[str]) -> list[OutputProblem]:
     """Re-read every done window's output; report (and mark stale by output) missing, changed or
     unreadable ones (a file that cannot be read, a database that is not one)."""
     import polars as pl
 
-    problems = []
+    problems: list[OutputProblem] = []
     for job in ws.select(jobs):
         states = ledger.states(job).filter(pl.col("state") == State.DONE)
-        bad: dict[str, list[str]] = {Verdict.MISSING: [], Verdict.CHANGED: [], Verdict.UNREADABLE: []}
+        bad: dict[Verdict, list[str]] = {Verdict.MISSING: [], Verdict.CHANGED: [], Verdict.UNREADABLE: []}
         fine: list[str] = []
         broken: str | None = None  # why the job's output database cannot be read, once found
         for row in states.iter_rows(named=True):
@@ -37,8 +52,7 @@ def verify_outputs(ws: Workspace, ledger: Ledger, jobs: list[str]) -> list[dict[
                 verdict, detail = Verdict.UNREADABLE, broken
             if verdict:
                 bad[verdict].append(row["window_key"])
-                problems.append({"job": job, "window": row["window_id"], "output": row["output"],
-                                 "problem": verdict, "detail": detail})
+                problems.append(OutputProblem(job, row["window_id"], row["output"], verdict, detail))
             elif row["output_state"]:
                 fine.append(row["window_key"])
         for verdict, keys in bad.items():
@@ -49,7 +63,7 @@ def verify_outputs(ws: Workspace, ledger: Ledger, jobs: list[str]) -> list[dict[
     return problems
 
 
-def _verify_output(ws: Workspace, job: str, row: dict[str, Any]) -> tuple[str | None, str | None]:
+def _verify_output(ws: Workspace, job: str, row: dict[str, Any]) -> tuple[Verdict | None, str | None]:
     """One done window's output against the ledger: (None | missing | changed | unreadable, detail)."""
     import sqlalchemy as sa
 
